@@ -1,0 +1,8 @@
+"""`python -m monitor` is the same as the `bandwatch` command."""
+
+import sys
+
+from .cli import main
+
+if __name__ == "__main__":
+    sys.exit(main())

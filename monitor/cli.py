@@ -1,0 +1,168 @@
+"""The `bandwatch` command line.
+
+Exit codes: 0 done; 2 bad usage or bad config (nothing started); 1 failure at
+run time. Logs go to stderr, one line each, with level names; JSON output
+goes to stdout.
+"""
+
+import argparse
+import logging
+import signal
+import sys
+import threading
+from typing import List, Optional, TextIO
+
+from . import __version__
+from .config import Config, load, quantity_unit
+from .errors import BandwatchError, ConfigError
+
+EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
+
+log = logging.getLogger("bandwatch")
+
+# Commands promised by the interface whose work is not in this version yet.
+_NOT_YET = {
+    "replay": "replaying a recording",
+    "record": "recording a source",
+    "view": "the live terminal view",
+    "bench": "the benchmark",
+}
+
+
+def _parser() -> argparse.ArgumentParser:
+    # argparse itself exits with 2 on bad usage, as the interface wants.
+    p = argparse.ArgumentParser(prog="bandwatch", description="Vibration band monitor for rotating machines.")
+    p.add_argument("--version", action="version", version=f"bandwatch {__version__}")
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+                   help="lowest level of log line written to stderr (default: info)")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    def with_config(name: str, text: str) -> argparse.ArgumentParser:
+        cmd = sub.add_parser(name, help=text, description=text)
+        cmd.add_argument("-c", "--config", required=True, metavar="FILE", help="the TOML config file")
+        return cmd
+
+    with_config("run", "run the monitor in the foreground until SIGTERM or SIGINT")
+    with_config("check", "validate the config and print the resolved bands and spectral resolution")
+    replay = with_config("replay", "run the pipeline on a recording as fast as possible")
+    replay.add_argument("recording", metavar="REC")
+    replay.add_argument("--plot", metavar="PNG")
+    record = with_config("record", "capture the configured source to a recording")
+    record.add_argument("-o", "--output", required=True, metavar="REC")
+    record.add_argument("--seconds", required=True, type=float, metavar="S")
+    with_config("view", "live terminal view of band levels against limits")
+    with_config("bench", "measure how many times faster than real time the pipeline runs")
+    return p
+
+
+def _setup_logging(level: str) -> None:
+    logging.basicConfig(
+        stream=sys.stderr,
+        level=getattr(logging, level.upper()),
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+    )
+
+
+def main(argv: Optional[List[str]] = None) -> int:
+    args = _parser().parse_args(argv)
+    _setup_logging(args.log_level)
+    try:
+        config = load(args.config)
+    except ConfigError as exc:
+        print(f"bandwatch: config error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    if args.command == "check":
+        print_check(config, sys.stdout)
+        return EXIT_OK
+    if args.command in _NOT_YET:
+        print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
+              file=sys.stderr)
+        return EXIT_USAGE
+    return _run(config)
+
+
+def _run(config: Config) -> int:
+    from .delivery import open_sink
+    from .pipeline import Monitor
+    from .sources import open_source
+
+    stop = threading.Event()
+
+    def on_signal(signum: int, _frame: object) -> None:
+        log.info("received %s, stopping", signal.Signals(signum).name)
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    try:
+        source = open_source(config.source)
+        source.open()
+    except BandwatchError as exc:
+        log.error("cannot open the source: %s", exc)
+        return EXIT_FAILURE
+    try:
+        sink = open_sink(config)
+        monitor = Monitor(config, source, sink)
+        log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
+                 len(config.source.channels), source.sample_rate)
+        monitor.run(stop)
+    except BandwatchError as exc:
+        log.error("%s", exc)
+        return EXIT_FAILURE
+    finally:
+        source.close()
+    return EXIT_OK
+
+
+def print_check(config: Config, out: TextIO) -> None:
+    """The resolved config, as `bandwatch check` prints it."""
+    from .sources import available
+    from .windows import Window
+
+    src = config.source
+    spec = config.spectrum
+    w = out.write
+    w(f"config {config.path}: OK\n")
+    w(f"node: {config.node}\n")
+    rate = f"{src.sample_rate:g} Hz" if src.sample_rate > 0 else "rate from the recording"
+    w(f"source: {src.kind}, {len(src.channels)} channel(s) ({', '.join(src.channels)}), {rate}, unit {src.unit}\n")
+    if not available(src.kind):
+        w(f"  note: source kind {src.kind!r} is not available in this version; `run` will refuse it\n")
+    w(f"spectrum: {spec.window} window, {spec.size} samples, overlap {spec.overlap:g}, {spec.averages} average(s)\n")
+    if src.sample_rate > 0:
+        fs = src.sample_rate
+        window = Window(spec.window, spec.size)
+        w(f"  bin width {fs / spec.size:.6g} Hz, frame {spec.size / fs:.6g} s, "
+          f"result every {spec.hop / fs:.6g} s ({spec.hop} samples), each covering {spec.span / fs:.6g} s\n")
+        w(f"  noise bandwidth {window.enbw_bins * fs / spec.size:.6g} Hz ({window.enbw_bins:.4g} bins), "
+          f"Nyquist {fs / 2:g} Hz\n")
+    sp = config.speed
+    if sp.rpm is not None:
+        tracked = f", tracked in {sp.search_hz[0]:g}..{sp.search_hz[1]:g} Hz" if sp.track and sp.search_hz else ""
+        w(f"speed: {sp.rpm:g} rpm ({sp.rpm / 60:.6g} Hz) nominal{tracked}\n")
+    else:
+        w("speed: none given (order bands need [speed] rpm)\n")
+    w(f"bands: {len(config.bands)}\n")
+    if config.bands:
+        rows = [("name", "channels", "edges (Hz)", "quantity", "unit", "alert", "danger", "hyst", "delay")]
+        for b in config.bands:
+            lo, hi = b.edges_hz(sp.nominal_hz)
+            edges = f"{lo:.6g}..{hi:.6g}"
+            if b.orders is not None:
+                edges += f" ({b.orders[0]:g}..{b.orders[1]:g}x)"
+            rows.append((
+                b.name, ",".join(b.channels), edges, b.quantity, quantity_unit(b.quantity, src.unit),
+                "-" if b.alert is None else f"{b.alert:g}", "-" if b.danger is None else f"{b.danger:g}",
+                f"{b.hysteresis:g}", f"{b.delay:g} s",
+            ))
+        widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+        for r in rows:
+            w("  " + "  ".join(cell.ljust(widths[i]) for i, cell in enumerate(r)).rstrip() + "\n")
+    w(f"health: stale after {config.health.stale:g} s without samples\n")
+    if config.mqtt is None:
+        w("output: JSON lines on stdout (no [mqtt] section)\n")
+    else:
+        m = config.mqtt
+        w(f"output: MQTT {m.host}:{m.port}, topics {m.prefix}/{config.node}/..., qos {m.qos}, "
+          f"summary every {m.summary_interval:g} s\n")

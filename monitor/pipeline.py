@@ -1,0 +1,271 @@
+"""The monitor: source -> ring -> spectrum -> bands -> rules -> delivery.
+
+One thread does the measuring. Blocks from the source are scaled to the
+unit and fed to the ring in pieces that end exactly on frame boundaries, so
+every hop gives one frame and every `averages` frames one result. Stream
+time is counted from samples (lost samples included), never from the clock.
+"""
+
+import logging
+import math
+import threading
+import time
+from dataclasses import dataclass
+from typing import Callable, Dict, List, Optional
+
+import numpy as np
+
+from . import __version__
+from .bands import BandBank, BandValue
+from .config import Config
+from .delivery.base import Sink
+from .payloads import Payload, num, stamp, utc_now
+from .peaks import interpolate_peak
+from .ring import Ring
+from .rules import LevelMachine
+from .sources.base import Block, Source
+from .spectrum import SpectralStage, Spectrum
+from .speed import SpeedTracker
+from .stats import time_stats
+
+log = logging.getLogger("bandwatch.pipeline")
+
+READ_TIMEOUT_S = 0.2
+
+
+@dataclass
+class Result:
+    """Everything measured at one hop."""
+
+    stream_s: float
+    speed_hz: Optional[float]
+    spectrum: Spectrum
+    stats: Dict[str, np.ndarray]  # rms, peak, crest, kurtosis per channel
+    velocity_rms: np.ndarray
+    dominant_hz: np.ndarray
+    dominant_rms: np.ndarray
+    bands: List[BandValue]
+
+
+class EventIds:
+    """Event ids, +1 per event. Kept in memory; a persistent store can replace it."""
+
+    def __init__(self, start: int = 1) -> None:
+        self._next = start
+
+    def take(self) -> int:
+        value = self._next
+        self._next += 1
+        return value
+
+
+class Monitor:
+    def __init__(
+        self,
+        config: Config,
+        source: Source,
+        sink: Sink,
+        ids: Optional[EventIds] = None,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
+        self.config = config
+        self.source = source
+        self.sink = sink
+        self.ids = ids or EventIds()
+        self.clock = clock
+        self.node = config.node
+        self.since = utc_now()
+        self.results = 0
+        self.latest: Optional[Result] = None
+        self._build()
+
+    def _build(self) -> None:
+        cfg = self.config
+        fs = self.source.sample_rate
+        spec = cfg.spectrum
+        channels = len(cfg.source.channels)
+        self.fs = fs
+        self.scale = np.asarray(cfg.source.scale, dtype=float)
+        self.ring = Ring(channels, spec.span)
+        self.stage = SpectralStage(fs, spec.size, spec.window, spec.averages, channels)
+        lines = spec.size // 2 + 1
+        self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines)
+        self.speed = SpeedTracker(cfg.speed)
+        self.band_rules = [
+            LevelMachine([("alert", b.alert), ("danger", b.danger)], b.hysteresis, b.delay)
+            for b, _ in self.bank.pairs
+        ]
+        # Stale: the value is seconds without samples; raised at once.
+        self.stale_rule = LevelMachine([("fault", cfg.health.stale)], 0.0, 0.0)
+        self._pending = spec.size  # samples until the next frame
+        self._samples = 0  # stream position, lost samples included
+        self._next_summary = 0.0
+        self._last_sample_at = self.clock()
+        self._stream_s = 0.0
+
+    # ------------------------------------------------------------------ run
+
+    def status(self, state: str) -> Payload:
+        payload = stamp(self.node, self._stream_s)
+        payload.update(state=state, version=__version__, since=self.since)
+        return payload
+
+    def run(self, stop: Optional[threading.Event] = None) -> None:
+        """Measure until the source ends or `stop` is set."""
+        stop = stop or threading.Event()
+        self.sink.open(self.status("online"), self.status("offline"))
+        try:
+            while not stop.is_set():
+                block = self.source.read(READ_TIMEOUT_S)
+                if block is None:
+                    if self.source.ended:
+                        break
+                    self._check_stale()
+                    continue
+                self._last_sample_at = self.clock()
+                self._check_stale()
+                self.feed(block)
+        finally:
+            self.sink.close(self.status("offline"))
+
+    def _check_stale(self) -> None:
+        quiet = self.clock() - self._last_sample_at
+        change = self.stale_rule.update(quiet, self._stream_s)
+        if change:
+            self._emit_health("stale", None, change, quiet, "s")
+
+    # ----------------------------------------------------------------- feed
+
+    def feed(self, block: Block) -> None:
+        """Take one block of raw samples through every stage."""
+        if block.lost:
+            # No frame may span a gap: start the ring and the average afresh.
+            self._samples += block.lost
+            self.ring.clear()
+            self.stage.reset()
+            self._pending = self.config.spectrum.size
+        samples = block.samples * self.scale
+        start = 0
+        total = samples.shape[0]
+        while start < total:
+            take = min(total - start, self._pending)
+            self.ring.write(samples[start : start + take])
+            start += take
+            self._samples += take
+            self._pending -= take
+            if self._pending == 0:
+                self._pending = self.config.spectrum.hop
+                self._frame()
+
+    def _frame(self) -> None:
+        size = self.config.spectrum.size
+        spectrum = self.stage.push(self.ring.latest(size))
+        if spectrum is None:
+            return
+        stream_s = (self._samples - 1) / self.fs
+        self._stream_s = stream_s
+        result = self._measure(spectrum, stream_s)
+        self.latest = result
+        self.results += 1
+        changed = self._apply_rules(result)
+        if changed or self.results == 1:
+            self.sink.send("levels", self._levels_payload(result))
+        if stream_s >= self._next_summary:
+            self.sink.send("summary", self._summary_payload(result))
+            interval = self.config.summary_interval
+            self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+
+    def _measure(self, spectrum: Spectrum, stream_s: float) -> Result:
+        speed_hz = self.speed.update(spectrum)
+        span = self.ring.latest(self.config.spectrum.span)
+        skip = self.stage.window.main_lobe
+        dominant_hz, dominant_rms = interpolate_peak(
+            spectrum.rms_amplitude, spectrum.window, spectrum.bin_hz, skip, spectrum.psd.shape[1] - 1
+        )
+        return Result(
+            stream_s=stream_s,
+            speed_hz=speed_hz,
+            spectrum=spectrum,
+            stats=time_stats(span),
+            velocity_rms=self.bank.velocity_rms(spectrum),
+            dominant_hz=dominant_hz,
+            dominant_rms=dominant_rms,
+            bands=self.bank.evaluate(spectrum, speed_hz),
+        )
+
+    # ---------------------------------------------------------------- rules
+
+    def _apply_rules(self, result: Result) -> bool:
+        changed = False
+        for (band, _), rule, value in zip(self.bank.pairs, self.band_rules, result.bands):
+            change = rule.update(value.value, result.stream_s)
+            if change is None:
+                continue
+            changed = True
+            ch = self.config.source.channels.index(value.channel)
+            event = self._event_base("band", value.name, value.channel, change)
+            event.update(
+                value=num(value.value),
+                alert=num(band.alert),
+                danger=num(band.danger),
+                unit=value.unit,
+                quantity=value.quantity,
+                speed_hz=num(result.speed_hz),
+                dominant_hz=num(result.dominant_hz[ch]),
+            )
+            self.sink.send("event", event)
+            log.info("%s/%s %s -> %s at %.3g %s", value.name, value.channel, change[0], change[1],
+                     value.value, value.unit)
+        return changed
+
+    def _event_base(self, kind: str, name: str, channel: Optional[str], change) -> Payload:
+        event = stamp(self.node, self._stream_s)
+        event.update(id=self.ids.take(), kind=kind, name=name, channel=channel,
+                     level=change[1], previous=change[0])
+        return event
+
+    def _emit_health(self, name: str, channel: Optional[str], change, value: float, unit: str) -> None:
+        event = self._event_base("health", name, channel, change)
+        speed = self.latest.speed_hz if self.latest else None
+        event.update(value=num(value), alert=None, danger=None, unit=unit, quantity=None,
+                     speed_hz=num(speed), dominant_hz=None)
+        self.sink.send("event", event)
+        log.warning("health %s %s -> %s (%.3g %s)", name, change[0], change[1], value, unit)
+        if self.latest is not None:
+            self.sink.send("levels", self._levels_payload(self.latest))
+
+    # ------------------------------------------------------------- payloads
+
+    def _levels_payload(self, result: Result) -> Payload:
+        payload = stamp(self.node, self._stream_s)
+        rows = [
+            {"name": v.name, "channel": v.channel, "level": rule.level, "value": num(v.value)}
+            for v, rule in zip(result.bands, self.band_rules)
+        ]
+        rows.append({"name": "stale", "channel": None, "level": self.stale_rule.level,
+                     "value": num(self.clock() - self._last_sample_at)})
+        payload["levels"] = rows
+        return payload
+
+    def _summary_payload(self, result: Result) -> Payload:
+        payload = stamp(self.node, result.stream_s)
+        unit = self.config.source.unit
+        channels = {}
+        for i, name in enumerate(self.config.source.channels):
+            channels[name] = {
+                "rms": num(result.stats["rms"][i]),
+                "peak": num(result.stats["peak"][i]),
+                "crest": num(result.stats["crest"][i]),
+                "kurtosis": num(result.stats["kurtosis"][i]),
+                "velocity_rms": num(result.velocity_rms[i]),
+                "dominant_hz": num(result.dominant_hz[i]),
+                "dominant_rms": num(result.dominant_rms[i]),
+                "unit": unit,
+            }
+        payload["speed_hz"] = num(result.speed_hz)
+        payload["channels"] = channels
+        payload["bands"] = [
+            {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level}
+            for v, rule in zip(result.bands, self.band_rules)
+        ]
+        return payload

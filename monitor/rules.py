@@ -1,0 +1,76 @@
+"""Level state machines: when a value's level is raised and when it clears.
+
+A level is raised when the value has stayed at or above its limit for
+`delay` seconds, and lowered when it has stayed below limit * (1 - hysteresis)
+for `delay` seconds. Time is stream time, counted from samples, never the
+wall clock. A value that cannot be measured (None or NaN) changes nothing and
+restarts every timer, since "stayed above" is then unknown.
+"""
+
+import math
+from typing import List, Optional, Sequence, Tuple
+
+BAND_LEVELS = ("normal", "alert", "danger")
+HEALTH_LEVELS = ("normal", "fault")
+
+# Stream times are sample counts divided by the rate; allow for rounding.
+_EPS = 1e-9
+
+
+class LevelMachine:
+    """Levels above `normal`, each with its limit, ascending.
+
+    `limits` pairs a level name with its limit, e.g.
+    [("alert", 2.8), ("danger", 4.5)]; a level whose limit is None is left out.
+    """
+
+    def __init__(
+        self,
+        limits: Sequence[Tuple[str, Optional[float]]],
+        hysteresis: float,
+        delay: float,
+    ) -> None:
+        self.limits: List[Tuple[str, float]] = [(n, float(v)) for n, v in limits if v is not None]
+        self.hysteresis = hysteresis
+        self.delay = delay
+        self.index = 0  # 0 = normal, i = self.limits[i - 1]
+        self._above: List[Optional[float]] = [None] * len(self.limits)
+        self._below: List[Optional[float]] = [None] * len(self.limits)
+
+    @property
+    def level(self) -> str:
+        return "normal" if self.index == 0 else self.limits[self.index - 1][0]
+
+    def update(self, value: Optional[float], t: float) -> Optional[Tuple[str, str]]:
+        """Feed one value at stream time `t`; return (previous, new) on a change."""
+        if value is None or not math.isfinite(value):
+            self._above = [None] * len(self.limits)
+            self._below = [None] * len(self.limits)
+            return None
+        for i, (_, limit) in enumerate(self.limits):
+            if value >= limit:
+                self._above[i] = t if self._above[i] is None else self._above[i]
+            else:
+                self._above[i] = None
+            if value < limit * (1.0 - self.hysteresis):
+                self._below[i] = t if self._below[i] is None else self._below[i]
+            else:
+                self._below[i] = None
+
+        new = self.index
+        for i in range(len(self.limits) - 1, self.index - 1, -1):
+            since = self._above[i]
+            if since is not None and t - since >= self.delay - _EPS:
+                new = i + 1
+                break
+        if new == self.index:
+            while new > 0:
+                since = self._below[new - 1]
+                if since is None or t - since < self.delay - _EPS:
+                    break
+                new -= 1
+        if new == self.index:
+            return None
+        previous = self.level
+        self.index = new
+        return previous, self.level

@@ -1,0 +1,47 @@
+"""Running speed: nominal from the config, or the 1x peak followed in a search range.
+
+Tracking looks only inside [speed] search_hz, which the user sets around 1x,
+so the estimate cannot jump to a harmonic. A peak counts only when it stands
+clear of the range's floor (its line at least 4 times the median power of the
+range, 6 dB) and is not on the range's edge line; otherwise the last good
+speed is kept. The frequency is read between lines with the estimator in
+monitor.peaks.
+"""
+
+import math
+from typing import Optional
+
+import numpy as np
+
+from .config import SpeedConfig
+from .peaks import interpolate_peak
+from .spectrum import Spectrum
+
+_CLEAR_OF_FLOOR = 4.0
+
+
+class SpeedTracker:
+    def __init__(self, config: SpeedConfig) -> None:
+        self.config = config
+        self.speed_hz: Optional[float] = config.nominal_hz
+        self.locked = False  # True while the last spectrum gave a usable peak
+
+    def update(self, spectrum: Spectrum) -> Optional[float]:
+        """The running speed in Hz after this spectrum (None if unknown)."""
+        if not self.config.track or self.config.search_hz is None:
+            return self.speed_hz
+        lo_hz, hi_hz = self.config.search_hz
+        lo = max(1, math.ceil(lo_hz / spectrum.bin_hz))
+        hi = min(spectrum.psd.shape[1] - 2, math.floor(hi_hz / spectrum.bin_hz))
+        self.locked = False
+        if hi - lo < 2:
+            return self.speed_hz
+        power = spectrum.power.sum(axis=0)
+        part = power[lo : hi + 1]
+        k = lo + int(np.argmax(part))
+        if k in (lo, hi) or power[k] < _CLEAR_OF_FLOOR * float(np.median(part)):
+            return self.speed_hz
+        freq, _ = interpolate_peak(np.sqrt(power)[None, :], spectrum.window, spectrum.bin_hz, k, k)
+        self.speed_hz = float(freq[0])
+        self.locked = True
+        return self.speed_hz
