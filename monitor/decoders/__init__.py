@@ -1,0 +1,54 @@
+"""Decoders: bytes from a sensor stream -> blocks of raw samples.
+
+`make_decoder(format, channels)` returns a `Decoder` for `[source] format`
+("frame" or "csv"). A decoder is fed whatever bytes arrived and returns the
+sample blocks it could complete; it keeps a bounded tail of partial input
+between calls, resynchronises on garbage and counts what it had to throw away.
+"""
+
+from typing import Dict, List, NamedTuple, Optional
+
+import numpy as np
+
+
+class Decoded(NamedTuple):
+    """Samples of one frame (or one run of CSV lines), shaped (n, channels),
+    raw values before scale. `lost` counts samples per channel missing just
+    before these (a sequence gap). `timestamp_us` is the frame's timestamp of
+    its first sample, when it carried one."""
+
+    samples: np.ndarray
+    lost: int = 0
+    timestamp_us: Optional[int] = None
+
+
+class Decoder:
+    """Base of every decoder: the counters and the interface.
+
+    Counters (cumulative since creation):
+      frames           good frames (CSV: good lines)
+      corrupt_frames   frames or lines rejected (bad CRC, bad header, wrong field count, too long)
+      corrupt_bytes    bytes skipped while resynchronising
+      gaps             sequence jumps
+      lost_samples     samples per channel lost in those jumps
+      mismatched       frames whose channel count differs from the config
+      nonfinite        frames or lines rejected for NaN or infinite samples
+    """
+
+    def __init__(self, channels: int) -> None:
+        self.channels = channels
+        self.counters: Dict[str, int] = dict.fromkeys(
+            ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "mismatched", "nonfinite"), 0
+        )
+
+    def feed(self, data: bytes) -> List[Decoded]:
+        raise NotImplementedError
+
+    def reset(self) -> None:
+        """Forget partial input and the expected sequence number (after a
+        reconnect or an unplug)."""
+        raise NotImplementedError
+
+
+def make_decoder(format: str, channels: int) -> Decoder:
+    raise NotImplementedError("filled in by the frame and csv decoders")
