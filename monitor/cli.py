@@ -25,7 +25,6 @@ _NOT_YET = {
     "replay": "replaying a recording",
     "record": "recording a source",
     "view": "the live terminal view",
-    "bench": "the benchmark",
 }
 
 
@@ -52,7 +51,9 @@ def _parser() -> argparse.ArgumentParser:
     record.add_argument("-o", "--output", required=True, metavar="REC")
     record.add_argument("--seconds", required=True, type=float, metavar="S")
     with_config("view", "live terminal view of band levels against limits")
-    with_config("bench", "measure how many times faster than real time the pipeline runs")
+    b = with_config("bench", "measure how many times faster than real time the pipeline runs")
+    b.add_argument("--seconds", type=float, default=120.0, metavar="S",
+                   help="seconds of simulated signal to run through (default: 120)")
     return p
 
 
@@ -75,6 +76,11 @@ def main(argv: Optional[List[str]] = None) -> int:
     if args.command == "check":
         print_check(config, sys.stdout)
         return EXIT_OK
+    if args.command == "bench":
+        from .bench import bench
+
+        bench(config, sys.stdout, seconds=args.seconds)
+        return EXIT_OK
     if args.command in _NOT_YET:
         print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
               file=sys.stderr)
@@ -84,6 +90,7 @@ def main(argv: Optional[List[str]] = None) -> int:
 
 def _run(config: Config) -> int:
     from .delivery import open_sink
+    from .notify import Notifier
     from .pipeline import Monitor
     from .sources import open_source
 
@@ -93,8 +100,14 @@ def _run(config: Config) -> int:
         log.info("received %s, stopping", signal.Signals(signum).name)
         stop.set()
 
+    def on_hangup(_signum: int, _frame: object) -> None:
+        # Without a handler SIGHUP would end the process (systemctl reload).
+        log.warning("reloading the config is not available in this version; "
+                    "restart the service to apply a changed config")
+
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    signal.signal(signal.SIGHUP, on_hangup)
     try:
         source = open_source(config.source)
         source.open()
@@ -103,7 +116,7 @@ def _run(config: Config) -> int:
         return EXIT_FAILURE
     try:
         sink = open_sink(config)
-        monitor = Monitor(config, source, sink)
+        monitor = Monitor(config, source, sink, notifier=Notifier())
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
                  len(config.source.channels), source.sample_rate)
         monitor.run(stop)

@@ -19,10 +19,11 @@ from . import __version__
 from .bands import BandBank, BandValue
 from .config import Config
 from .delivery.base import Sink
+from .notify import Notifier
 from .payloads import Payload, num, stamp, utc_now
 from .peaks import interpolate_peak
 from .ring import Ring
-from .rules import LevelMachine
+from .rules import BAND_LEVELS, LevelMachine
 from .sources.base import Block, Source
 from .spectrum import SpectralStage, Spectrum
 from .speed import SpeedTracker
@@ -67,12 +68,14 @@ class Monitor:
         sink: Sink,
         ids: Optional[EventIds] = None,
         clock: Callable[[], float] = time.monotonic,
+        notifier: Optional[Notifier] = None,
     ) -> None:
         self.config = config
         self.source = source
         self.sink = sink
         self.ids = ids or EventIds()
         self.clock = clock
+        self.notifier = notifier or Notifier(environ={})
         self.node = config.node
         self.since = utc_now()
         self.results = 0
@@ -116,6 +119,9 @@ class Monitor:
         self.sink.open(self.status("online"), self.status("offline"))
         try:
             while not stop.is_set():
+                # The loop turns at least every READ_TIMEOUT_S; a hung source
+                # or stage stops the pings and systemd's watchdog steps in.
+                self.notifier.watchdog()
                 block = self.source.read(READ_TIMEOUT_S)
                 if block is None:
                     if self.source.ended:
@@ -126,7 +132,16 @@ class Monitor:
                 self._check_stale()
                 self.feed(block)
         finally:
+            self.notifier.stopping()
             self.sink.close(self.status("offline"))
+
+    def status_line(self, result: Result) -> str:
+        """One line for systemctl status: speed and the highest band level."""
+        ranks = [BAND_LEVELS.index(rule.level) for rule in self.band_rules]
+        speed = "speed unknown" if result.speed_hz is None else f"{result.speed_hz * 60:.0f} rpm"
+        raised = sum(1 for rank in ranks if rank > 0)
+        return (f"{self.node}: {speed}, {self.results} results, "
+                f"{raised} band(s) raised, worst {BAND_LEVELS[max(ranks, default=0)]}")
 
     def _check_stale(self) -> None:
         quiet = self.clock() - self._last_sample_at
@@ -167,11 +182,14 @@ class Monitor:
         result = self._measure(spectrum, stream_s)
         self.latest = result
         self.results += 1
+        if self.results == 1:
+            self.notifier.ready(self.status_line(result))
         changed = self._apply_rules(result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
             self.sink.send("summary", self._summary_payload(result))
+            self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
 
