@@ -5,7 +5,7 @@ import pytest
 import scipy.signal
 
 from monitor.spectrum import SpectralStage
-from tests.test_windows import SCIPY_NAMES
+from test_windows import SCIPY_NAMES
 
 
 def _run_stage(x, fs, size, hop, window, averages):
