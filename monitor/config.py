@@ -20,7 +20,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - exercised on old Pythons only
     import tomli as tomllib
 
-NAME_RE = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
+NAME_RE = re.compile(r"^[A-Za-z0-9_-]{1,64}\Z")  # \Z: "$" would pass a final newline
 SOURCE_KINDS = ("serial", "tcp-client", "tcp-server", "udp", "file", "simulator")
 FORMATS = ("frame", "csv")
 UNITS = ("g", "m/s2")
@@ -133,7 +133,13 @@ class BandConfig:
 
 @dataclass(frozen=True)
 class HealthConfig:
-    stale: float = 2.0
+    stale: float = 2.0  # s without samples
+    window: float = 10.0  # s of stream over which counts are taken
+    corrupt: float = 0.01  # share of frames rejected
+    clipping: float = 0.001  # share of samples at full scale
+    flatline: float = 5.0  # s without any change on a channel
+    rate: float = 0.01  # relative disagreement of timestamps with sample_rate
+    alias: float = 0.2  # share of power in the top 10 % below Nyquist
 
 
 @dataclass(frozen=True)
@@ -258,6 +264,7 @@ class _Table:
         self.table = table
         self.index = index
         self.used: set = set()
+        self.asked: set = set()  # every key a reader looked for, present or not
 
     def path(self, key: Optional[str]) -> str:
         base = self.table if self.index is None else f"{self.table}[{self.index}]"
@@ -271,14 +278,16 @@ class _Table:
         return self.fail(key, f"expected {expected}, got {_show(value)}")
 
     def has(self, key: str) -> bool:
+        self.asked.add(key)
         return key in self.data
 
     def raw(self, key: str) -> Any:
+        self.asked.add(key)
         self.used.add(key)
         return self.data[key]
 
     def get_str(self, key: str, default: Optional[str] = None, choices: Sequence[str] = ()) -> str:
-        if key not in self.data:
+        if not self.has(key):
             if default is None:
                 raise self.fail(key, "missing; this key is required")
             return default
@@ -296,7 +305,7 @@ class _Table:
         return value
 
     def get_bool(self, key: str, default: bool) -> bool:
-        if key not in self.data:
+        if not self.has(key):
             return default
         value = self.raw(key)
         if not isinstance(value, bool):
@@ -304,7 +313,7 @@ class _Table:
         return value
 
     def get_int(self, key: str, default: Optional[int], lo: int, hi: int) -> int:
-        if key not in self.data:
+        if not self.has(key):
             if default is None:
                 raise self.fail(key, "missing; this key is required")
             return default
@@ -332,7 +341,7 @@ class _Table:
         lo_open: bool = False,
         expected: str = "",
     ) -> float:
-        if key not in self.data:
+        if not self.has(key):
             if default is None:
                 raise self.fail(key, "missing; this key is required")
             return default
@@ -346,7 +355,7 @@ class _Table:
         return number
 
     def get_optional_float(self, key: str, lo_open_at: float = 0.0) -> Optional[float]:
-        if key not in self.data:
+        if not self.has(key):
             return None
         return self.get_float(key, None, lo=lo_open_at, lo_open=True)
 
@@ -368,19 +377,19 @@ class _Table:
         return value
 
     def table_of(self, key: str) -> Optional[Dict[str, Any]]:
-        if key not in self.data:
+        if not self.has(key):
             return None
         value = self.raw(key)
         if not isinstance(value, dict):
             raise self.bad(key, value, "a table [" + key + "]")
         return value
 
-    def finish(self, allowed_note: str = "") -> None:
-        """Refuse every key that was not read."""
+    def finish(self) -> None:
+        """Refuse every key that was not read, naming the keys this table takes."""
         for key in self.data:
             if key not in self.used:
-                note = f" {allowed_note}" if allowed_note else ""
-                raise self.fail(key, f"unknown key{note}")
+                known = ", ".join(sorted(self.asked))
+                raise self.fail(key, f"unknown key; expected one of {known}")
 
 
 # ---------------------------------------------------------------------------
@@ -570,7 +579,15 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig) -> BandConfi
 
 
 def _read_health(t: _Table) -> HealthConfig:
-    health = HealthConfig(stale=t.get_float("stale", 2.0, lo=0.0, lo_open=True, hi=3600.0))
+    health = HealthConfig(
+        stale=t.get_float("stale", 2.0, lo=0.0, lo_open=True, hi=3600.0),
+        window=t.get_float("window", 10.0, lo=0.0, lo_open=True, hi=3600.0),
+        corrupt=t.get_float("corrupt", 0.01, lo=0.0, lo_open=True, hi=1.0),
+        clipping=t.get_float("clipping", 0.001, lo=0.0, lo_open=True, hi=1.0),
+        flatline=t.get_float("flatline", 5.0, lo=0.0, lo_open=True, hi=86400.0),
+        rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
+        alias=t.get_float("alias", 0.2, lo=0.0, lo_open=True, hi=1.0),
+    )
     t.finish()
     return health
 
@@ -607,9 +624,9 @@ def _read_mqtt(t: _Table) -> MqttConfig:
     if not cfg.host:
         raise t.bad("host", "", "a broker host name or address")
     if cfg.password_file and not cfg.username:
-        raise t.fail("password_file", "set, but username is empty")
+        raise t.bad("password_file", cfg.password_file, "no password_file while username is empty")
     if cfg.ca_file and not cfg.tls:
-        raise t.fail("ca_file", "set, but tls = false")
+        raise t.bad("ca_file", cfg.ca_file, "no ca_file while tls = false")
     if not cfg.queue_dir:
         raise t.bad("queue_dir", "", "a directory for the on-disk event queue")
     t.finish()
@@ -647,7 +664,8 @@ def parse(text: str, file: str = "<config>") -> Config:
     for key in data:
         if key not in _SECTIONS:
             raise ConfigError(file, key, "unknown section; expected one of " + ", ".join(_SECTIONS),
-                              locator.find(key, None, None) or locator.find("", None, key))
+                              locator.find(key, None, None) or locator.find(key, 1, None)
+                              or locator.find("", None, key))
 
     node = _read_node(section("node", True))
     speed_t = section("speed", False)

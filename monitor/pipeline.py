@@ -19,6 +19,7 @@ from . import __version__
 from .bands import BandBank, BandValue
 from .config import Config
 from .delivery.base import Sink
+from .health import Change, Health
 from .notify import Notifier
 from .payloads import Payload, num, stamp, utc_now
 from .peaks import interpolate_peak
@@ -98,8 +99,7 @@ class Monitor:
             LevelMachine([("alert", b.alert), ("danger", b.danger)], b.hysteresis, b.delay)
             for b, _ in self.bank.pairs
         ]
-        # Stale: the value is seconds without samples; raised at once.
-        self.stale_rule = LevelMachine([("fault", cfg.health.stale)], 0.0, 0.0)
+        self.health = Health(cfg.health, cfg.source.channels, fs)
         self._pending = spec.size  # samples until the next frame
         self._samples = 0  # stream position, lost samples included
         self._next_summary = 0.0
@@ -126,10 +126,10 @@ class Monitor:
                 if block is None:
                     if self.source.ended:
                         break
-                    self._check_stale()
+                    quiet = self.clock() - self._last_sample_at
+                    self._emit_health(self.health.on_quiet(quiet, self._stream_s))
                     continue
                 self._last_sample_at = self.clock()
-                self._check_stale()
                 self.feed(block)
         finally:
             self.notifier.stopping()
@@ -143,12 +143,6 @@ class Monitor:
         return (f"{self.node}: {speed}, {self.results} results, "
                 f"{raised} band(s) raised, worst {BAND_LEVELS[max(ranks, default=0)]}")
 
-    def _check_stale(self) -> None:
-        quiet = self.clock() - self._last_sample_at
-        change = self.stale_rule.update(quiet, self._stream_s)
-        if change:
-            self._emit_health("stale", None, change, quiet, "s")
-
     # ----------------------------------------------------------------- feed
 
     def feed(self, block: Block) -> None:
@@ -159,6 +153,12 @@ class Monitor:
             self.ring.clear()
             self.stage.reset()
             self._pending = self.config.spectrum.size
+        n = block.samples.shape[0]
+        counters = self.source.counters() if hasattr(self.source, "counters") else None
+        self._stream_s = (self._samples + n - 1) / self.fs
+        self._emit_health(self.health.on_block(
+            block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
+        ))
         samples = block.samples * self.scale
         start = 0
         total = samples.shape[0]
@@ -178,13 +178,13 @@ class Monitor:
         if spectrum is None:
             return
         stream_s = (self._samples - 1) / self.fs
-        self._stream_s = stream_s
         result = self._measure(spectrum, stream_s)
         self.latest = result
         self.results += 1
         if self.results == 1:
             self.notifier.ready(self.status_line(result))
         changed = self._apply_rules(result)
+        changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
@@ -221,7 +221,7 @@ class Monitor:
                 continue
             changed = True
             ch = self.config.source.channels.index(value.channel)
-            event = self._event_base("band", value.name, value.channel, change)
+            event = self._event_base("band", value.name, value.channel, change, result.stream_s)
             event.update(
                 value=num(value.value),
                 alert=num(band.alert),
@@ -236,21 +236,30 @@ class Monitor:
                      value.value, value.unit)
         return changed
 
-    def _event_base(self, kind: str, name: str, channel: Optional[str], change) -> Payload:
-        event = stamp(self.node, self._stream_s)
+    def _event_base(self, kind: str, name: str, channel: Optional[str], change, stream_s: float) -> Payload:
+        event = stamp(self.node, stream_s)
         event.update(id=self.ids.take(), kind=kind, name=name, channel=channel,
                      level=change[1], previous=change[0])
         return event
 
-    def _emit_health(self, name: str, channel: Optional[str], change, value: float, unit: str) -> None:
-        event = self._event_base("health", name, channel, change)
-        speed = self.latest.speed_hz if self.latest else None
-        event.update(value=num(value), alert=None, danger=None, unit=unit, quantity=None,
-                     speed_hz=num(speed), dominant_hz=None)
-        self.sink.send("event", event)
-        log.warning("health %s %s -> %s (%.3g %s)", name, change[0], change[1], value, unit)
-        if self.latest is not None:
+    def _emit_health(self, changes: List[Change], result: Optional[Result] = None) -> bool:
+        """Publish health level changes. Outside a result (`result` None) the
+        levels snapshot follows at once; within one, the caller sends it."""
+        latest = result or self.latest
+        for check, change in changes:
+            event = self._event_base("health", check.name, check.channel, change, self._stream_s)
+            dominant = None
+            if latest is not None and check.channel is not None:
+                dominant = latest.dominant_hz[self.config.source.channels.index(check.channel)]
+            event.update(value=num(check.value), alert=None, danger=None, unit=check.unit, quantity=None,
+                         speed_hz=num(latest.speed_hz if latest else None), dominant_hz=num(dominant))
+            self.sink.send("event", event)
+            log.warning("health %s%s %s -> %s (%.3g %s)", check.name,
+                        f"/{check.channel}" if check.channel else "", change[0], change[1],
+                        check.value if check.value is not None else float("nan"), check.unit)
+        if changes and result is None and self.latest is not None:
             self.sink.send("levels", self._levels_payload(self.latest))
+        return bool(changes)
 
     # ------------------------------------------------------------- payloads
 
@@ -260,8 +269,7 @@ class Monitor:
             {"name": v.name, "channel": v.channel, "level": rule.level, "value": num(v.value)}
             for v, rule in zip(result.bands, self.band_rules)
         ]
-        rows.append({"name": "stale", "channel": None, "level": self.stale_rule.level,
-                     "value": num(self.clock() - self._last_sample_at)})
+        rows.extend({**row, "value": num(row["value"])} for row in self.health.rows())
         payload["levels"] = rows
         return payload
 

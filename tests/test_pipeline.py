@@ -234,13 +234,19 @@ def test_events_in_a_scenario_match_independent_computation():
     amp = np.select([t < 10, t < 20, t < 30], [0.5, 2.0, 4.0], 0.2)
     x = np.column_stack([amp * np.sqrt(2) * np.sin(2 * np.pi * 50 * t), np.zeros(n)])
     _, sink = run(config, x)
-    events = sink.of("event")
+    events = [e for e in sink.of("event") if e["kind"] == "band"]
     expected = expected_events(x, config, {1: 1.0, 2: 3.0})
     assert [(e["stream_s"], e["level"]) for e in events] == expected
     # Falling from 4 to 0.2, the 2 s average passes below danger's clear
     # point a little before alert's, so danger steps down through alert.
     assert [e["level"] for e in events] == ["alert", "danger", "alert", "normal"]
-    assert [e["id"] for e in events] == [1, 2, 3, 4]
+    # The silent y channel raises its flatline fault once 5 s (the default)
+    # have passed, at the end of the block (512 samples) that completes them.
+    health = [e for e in sink.of("event") if e["kind"] == "health"]
+    assert [(e["name"], e["channel"], e["level"]) for e in health] == [("flatline", "y", "fault")]
+    assert 5.0 <= health[0]["stream_s"] < 5.0 + 512 / FS
+    # Ids count every event, band and health alike, in order.
+    assert sorted(e["id"] for e in sink.of("event")) == [1, 2, 3, 4, 5]
     first = events[0]
     assert first["previous"] == "normal" and first["kind"] == "band" and first["channel"] == "x"
     assert (first["alert"], first["danger"], first["unit"], first["quantity"]) == (1.0, 3.0, "m/s2", "acceleration")

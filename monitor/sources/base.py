@@ -18,10 +18,16 @@ class Block(NamedTuple):
 
     `lost` counts samples per channel known to be missing just before this
     block (a sequence gap); the pipeline never lets a spectrum span them.
+    `full_scale` is the largest positive value of the raw integer type
+    (32767 for int16), when the samples came as integers: a sample at or
+    beyond it in magnitude is clipped.
+    `timestamp_us` is the sensor's time of the first sample, when it sent one.
     """
 
     samples: np.ndarray
     lost: int = 0
+    full_scale: Optional[float] = None
+    timestamp_us: Optional[int] = None
 
 
 class Source:

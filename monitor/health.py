@@ -1,0 +1,211 @@
+"""Health checks: is the measurement itself to be trusted?
+
+Each check measures one value and runs it through the same level machine as
+the bands, with the levels `normal` and `fault` (spec section 4):
+
+| check    | scope   | value                                                    | fault at or above |
+| -------- | ------- | -------------------------------------------------------- | ----------------- |
+| stale    | source  | seconds without samples (wall clock)                     | `stale`           |
+| gap      | source  | sequence gaps in the last `window` s of stream           | 1                 |
+| corrupt  | source  | share of frames (or lines) rejected in the last `window` | `corrupt`         |
+| clipping | channel | share of samples at the integer type's full scale, last `window` | `clipping` |
+| flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
+| rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
+| alias    | channel | share of the power in the top 10 % below Nyquist         | `alias`           |
+
+Counts come from the source's cumulative counters (`counters()`, where the
+source has them), differenced over a sliding window of stream time.
+"""
+
+import collections
+import math
+from dataclasses import dataclass
+from typing import Deque, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
+
+from .config import HealthConfig
+from .rules import LevelMachine
+from .spectrum import Spectrum
+
+# Counter snapshots are taken at most this often (stream seconds), which
+# bounds the window's memory whatever the block size.
+_SNAPSHOT_S = 0.1
+# Timestamps must span this much stream time before the rate is judged, so
+# that arrival jitter of single frames does not count.
+_RATE_BASELINE_S = 5.0
+ALIAS_TOP_SHARE = 0.1  # the top 10 % of the band below Nyquist
+
+
+@dataclass
+class Check:
+    name: str
+    channel: Optional[str]
+    unit: str
+    rule: LevelMachine
+    value: Optional[float] = None
+
+
+Change = Tuple[Check, Tuple[str, str]]
+
+
+class Health:
+    """Every health check of one monitor, fed by the pipeline."""
+
+    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float) -> None:
+        self.config = config
+        self.channels = list(channels)
+        self.fs = sample_rate
+
+        def check(name: str, channel: Optional[str], unit: str, limit: float, hysteresis: float = 0.0,
+                  delay: float = 0.0) -> Check:
+            return Check(name, channel, unit, LevelMachine([("fault", limit)], hysteresis, delay))
+
+        self.stale = check("stale", None, "s", config.stale)
+        self.gap = check("gap", None, "count", 1.0)
+        self.corrupt = check("corrupt", None, "share", config.corrupt)
+        self.rate = check("rate", None, "share", config.rate)
+        self.clipping = [check("clipping", c, "share", config.clipping) for c in self.channels]
+        self.flatline = [check("flatline", c, "s", config.flatline) for c in self.channels]
+        # Alias: a little hysteresis and delay, since the share of a noisy
+        # spectrum wavers around any limit.
+        self.alias = [check("alias", c, "share", config.alias, 0.2, 2.0) for c in self.channels]
+        self.checks: List[Check] = (
+            [self.stale, self.gap, self.corrupt]
+            + self.clipping
+            + self.flatline
+            + [self.rate]
+            + self.alias
+        )
+        self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque()
+        self._flat_since: List[Optional[float]] = [None] * len(self.channels)
+        self._last_row: Optional[np.ndarray] = None
+        self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
+        self._line_mask: Optional[np.ndarray] = None
+        # Totals for what sources do not count themselves.
+        self._own: Dict[str, int] = {"samples": 0}
+        self._own.update({f"clipped{i}": 0 for i in range(len(self.channels))})
+
+    @staticmethod
+    def _update(check: Check, value: Optional[float], t: float, out: List[Change]) -> None:
+        check.value = value
+        change = check.rule.update(value, t)
+        if change:
+            out.append((check, change))
+
+    # ------------------------------------------------------------- inputs
+
+    def on_quiet(self, seconds: float, t: float) -> List[Change]:
+        """Seconds since the last sample arrived (wall clock)."""
+        out: List[Change] = []
+        self._update(self.stale, seconds, t, out)
+        return out
+
+    def on_block(
+        self,
+        raw: np.ndarray,
+        start_index: int,
+        lost: int,
+        t: float,
+        full_scale: Optional[float],
+        timestamp_us: Optional[int],
+        counters: Optional[Dict[str, int]],
+    ) -> List[Change]:
+        """One block of raw samples whose first sample has stream index
+        `start_index`; `t` is the stream time of its last sample."""
+        out: List[Change] = []
+        self._update(self.stale, 0.0, t, out)
+        totals: Dict[str, float] = dict(counters or {})
+        self._count_block(raw, full_scale, totals)
+        self._windowed(t, totals, out)
+        self._flatline(raw, lost, t, out)
+        self._rate(start_index, lost, timestamp_us, t, out)
+        return out
+
+    def on_spectrum(self, spectrum: Spectrum, t: float) -> List[Change]:
+        out: List[Change] = []
+        if self._line_mask is None:
+            f = spectrum.freqs
+            nyquist = f[-1]
+            self._line_mask = f >= (1.0 - ALIAS_TOP_SHARE) * nyquist
+        total = spectrum.psd[:, 1:].sum(axis=1)
+        top = spectrum.psd[:, self._line_mask].sum(axis=1)
+        for i, check in enumerate(self.alias):
+            share = float(top[i] / total[i]) if total[i] > 0 else None
+            self._update(check, share, t, out)
+        return out
+
+    # ------------------------------------------------------------ details
+
+    def _count_block(self, raw: np.ndarray, full_scale: Optional[float], totals: Dict[str, float]) -> None:
+        own = self._own
+        own["samples"] += raw.shape[0]
+        if full_scale is not None:
+            clipped = np.count_nonzero(np.abs(raw) >= full_scale, axis=0)
+            for i, n in enumerate(clipped):
+                own[f"clipped{i}"] += int(n)
+        totals.update(own)
+
+    def _windowed(self, t: float, totals: Dict[str, float], out: List[Change]) -> None:
+        snaps = self._snapshots
+        if not snaps or t - snaps[-1][0] >= _SNAPSHOT_S:
+            snaps.append((t, totals))
+        while len(snaps) > 1 and snaps[1][0] <= t - self.config.window:
+            snaps.popleft()
+        _, old = snaps[0]
+
+        def delta(key: str) -> float:
+            return float(totals.get(key, 0) - old.get(key, 0))
+
+        # The window starts at the oldest snapshot, so a fresh monitor judges
+        # what it has seen so far.
+        self._update(self.gap, delta("gaps"), t, out)
+        rejected = delta("corrupt_frames") + delta("mismatched") + delta("nonfinite")
+        seen = delta("frames") + rejected
+        self._update(self.corrupt, rejected / seen if seen > 0 else 0.0, t, out)
+        samples = delta("samples")
+        for i, check in enumerate(self.clipping):
+            self._update(check, delta(f"clipped{i}") / samples if samples > 0 else 0.0, t, out)
+
+    def _flatline(self, raw: np.ndarray, lost: int, t: float, out: List[Change]) -> None:
+        n = raw.shape[0]
+        if n == 0:
+            return
+        first = raw[0]
+        still = np.all(raw == first, axis=0)
+        if self._last_row is not None and not lost:
+            still &= self._last_row == first
+        block_start = t - (n - 1) / self.fs
+        for i, check in enumerate(self.flatline):
+            if not still[i]:
+                # The channel moved in this block; flat time restarts at its
+                # last change, approximated by the block's end.
+                self._flat_since[i] = None
+                value = 0.0
+            else:
+                if self._flat_since[i] is None:
+                    self._flat_since[i] = block_start
+                value = t - self._flat_since[i]
+            self._update(check, value, t, out)
+        self._last_row = raw[-1].copy()
+
+    def _rate(self, index: int, lost: int, timestamp_us: Optional[int], t: float, out: List[Change]) -> None:
+        if timestamp_us is None:
+            return
+        if lost or self._rate_origin is None:
+            self._rate_origin = (timestamp_us, index)
+            return
+        t0, i0 = self._rate_origin
+        elapsed = (timestamp_us - t0) / 1e6
+        if (index - i0) / self.fs < _RATE_BASELINE_S or elapsed <= 0:
+            return
+        measured = (index - i0) / elapsed
+        self._update(self.rate, abs(measured / self.fs - 1.0), t, out)
+
+    def rows(self) -> List[Dict[str, object]]:
+        """name, channel, level and value of every check, for `levels`."""
+        return [
+            {"name": c.name, "channel": c.channel, "level": c.rule.level,
+             "value": None if c.value is None or not math.isfinite(c.value) else c.value}
+            for c in self.checks
+        ]
