@@ -77,7 +77,9 @@ class Health:
             + [self.rate]
             + self.alias
         )
-        self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque()
+        # Counter snapshots over the window, oldest first; the first stands
+        # for "before any sample", so a fresh monitor judges all it has seen.
+        self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
         self._flat_since: List[Optional[float]] = [None] * len(self.channels)
         self._last_row: Optional[np.ndarray] = None
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
@@ -148,7 +150,7 @@ class Health:
 
     def _windowed(self, t: float, totals: Dict[str, float], out: List[Change]) -> None:
         snaps = self._snapshots
-        if not snaps or t - snaps[-1][0] >= _SNAPSHOT_S:
+        if t - snaps[-1][0] >= _SNAPSHOT_S:
             snaps.append((t, totals))
         while len(snaps) > 1 and snaps[1][0] <= t - self.config.window:
             snaps.popleft()
@@ -157,8 +159,6 @@ class Health:
         def delta(key: str) -> float:
             return float(totals.get(key, 0) - old.get(key, 0))
 
-        # The window starts at the oldest snapshot, so a fresh monitor judges
-        # what it has seen so far.
         self._update(self.gap, delta("gaps"), t, out)
         rejected = delta("corrupt_frames") + delta("mismatched") + delta("nonfinite")
         seen = delta("frames") + rejected
@@ -171,22 +171,18 @@ class Health:
         n = raw.shape[0]
         if n == 0:
             return
-        first = raw[0]
-        still = np.all(raw == first, axis=0)
-        if self._last_row is not None and not lost:
-            still &= self._last_row == first
+        # changed[i, c]: sample i of channel c differs from the one before it.
+        changed = np.empty(raw.shape, dtype=bool)
+        changed[1:] = raw[1:] != raw[:-1]
+        changed[0] = True if self._last_row is None or lost else raw[0] != self._last_row
         block_start = t - (n - 1) / self.fs
         for i, check in enumerate(self.flatline):
-            if not still[i]:
-                # The channel moved in this block; flat time restarts at its
-                # last change, approximated by the block's end.
-                self._flat_since[i] = None
-                value = 0.0
-            else:
-                if self._flat_since[i] is None:
-                    self._flat_since[i] = block_start
-                value = t - self._flat_since[i]
-            self._update(check, value, t, out)
+            moved = np.flatnonzero(changed[:, i])
+            if moved.size:
+                self._flat_since[i] = block_start + moved[-1] / self.fs
+            elif self._flat_since[i] is None:
+                self._flat_since[i] = block_start
+            self._update(check, t - self._flat_since[i], t, out)
         self._last_row = raw[-1].copy()
 
     def _rate(self, index: int, lost: int, timestamp_us: Optional[int], t: float, out: List[Change]) -> None:
