@@ -16,7 +16,7 @@ are left out by construction.
 """
 
 from dataclasses import dataclass
-from typing import Dict, List, Optional, Sequence, Tuple
+from typing import Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
@@ -87,7 +87,6 @@ class BandBank:
         self._factors: Dict[str, np.ndarray] = {
             q: quantity_factors(q, unit, bin_hz, lines) for q in {b.quantity for b, _ in self.pairs}
         }
-        self._rows = np.array([ch for _, ch in self.pairs], dtype=int)
         # Weights of fixed-Hz bands are computed once; order bands follow the speed.
         self._fixed: Dict[int, np.ndarray] = {
             i: self._weights(band, None) for i, (band, _) in enumerate(self.pairs) if band.hz is not None
@@ -100,15 +99,22 @@ class BandBank:
         lo, hi = band.edges_hz(speed_hz)
         return line_weights(lo, hi, self.bin_hz, self.lines) * self._factors[band.quantity]
 
-    def evaluate(self, spectrum: Spectrum, speed_hz: Optional[float]) -> List[BandValue]:
-        """Band values for one spectrum at the current running speed."""
+    def evaluate(self, spectra: Union[Spectrum, Mapping[str, Spectrum]],
+                 speed_hz: Optional[float]) -> List[BandValue]:
+        """Band values at the current running speed. `spectra` maps each
+        band's `spectrum` ("raw", "envelope") to its Spectrum; a lone
+        Spectrum serves as "raw"."""
         if not self.pairs:
             return []
+        if isinstance(spectra, Spectrum):
+            spectra = {"raw": spectra}
         weights = np.empty((len(self.pairs), self.lines))
-        for i, (band, _) in enumerate(self.pairs):
+        rows = np.empty((len(self.pairs), self.lines))
+        for i, (band, ch) in enumerate(self.pairs):
             fixed = self._fixed.get(i)
             weights[i] = fixed if fixed is not None else self._weights(band, speed_hz)
-        power = np.einsum("pk,pk->p", spectrum.psd[self._rows], weights) * spectrum.bin_hz
+            rows[i] = spectra[band.spectrum].psd[ch]
+        power = np.einsum("pk,pk->p", rows, weights) * self.bin_hz
         values = np.sqrt(power)
         return [
             BandValue(

@@ -156,14 +156,27 @@ def print_check(config: Config, out: TextIO) -> None:
         w(f"speed: {sp.rpm:g} rpm ({sp.rpm / 60:.6g} Hz) nominal{tracked}\n")
     else:
         w("speed: none given (order bands need [speed] rpm)\n")
+    for bearing in config.bearings:
+        orders = bearing.orders()
+        w(f"bearing {bearing.name}: {bearing.elements} elements, d {bearing.element_diameter:g}, "
+          f"D {bearing.pitch_diameter:g}, contact {bearing.contact_angle:g} deg; orders "
+          + ", ".join(f"{k.upper()} {v:.4g}" for k, v in orders.items()) + "\n")
+    if config.envelope is not None:
+        lo, hi = config.envelope.band_hz
+        w(f"envelope: carrier band {lo:g}..{hi:g} Hz, same frames and averaging as the spectrum\n")
     w(f"bands: {len(config.bands)}\n")
     if config.bands:
         rows = [("name", "channels", "edges (Hz)", "quantity", "unit", "alert", "danger", "hyst", "delay")]
         for b in config.bands:
             lo, hi = b.edges_hz(sp.nominal_hz)
             edges = f"{lo:.6g}..{hi:.6g}"
-            if b.orders is not None:
+            if b.bearing is not None:
+                harmonic = f" x{b.harmonic}" if b.harmonic > 1 else ""
+                edges += f" ({b.bearing} {b.defect}{harmonic})"
+            elif b.orders is not None:
                 edges += f" ({b.orders[0]:g}..{b.orders[1]:g}x)"
+            if b.spectrum == "envelope":
+                edges += " envelope"
             rows.append((
                 b.name, ",".join(b.channels), edges, b.quantity, quantity_unit(b.quantity, src.unit),
                 "-" if b.alert is None else f"{b.alert:g}", "-" if b.danger is None else f"{b.danger:g}",

@@ -13,6 +13,7 @@ import sys
 from dataclasses import dataclass
 from typing import Any, Dict, List, Optional, Sequence, Tuple
 
+from .bearings import DEFECTS, defect_orders
 from .errors import ConfigError
 
 if sys.version_info >= (3, 11):
@@ -122,6 +123,12 @@ class BandConfig:
     danger: Optional[float] = None
     hysteresis: float = 0.1
     delay: float = 3.0
+    spectrum: str = "raw"  # or "envelope"
+    # Set when the edges come from a bearing's defect frequency (then
+    # `orders` holds the resolved edges).
+    bearing: Optional[str] = None
+    defect: Optional[str] = None
+    harmonic: int = 1
 
     def edges_hz(self, speed_hz: Optional[float]) -> Tuple[float, float]:
         """Band edges in Hz, following the running speed for order bands."""
@@ -129,6 +136,23 @@ class BandConfig:
             return self.hz
         assert self.orders is not None and speed_hz is not None
         return (self.orders[0] * speed_hz, self.orders[1] * speed_hz)
+
+
+@dataclass(frozen=True)
+class BearingConfig:
+    name: str
+    elements: int
+    element_diameter: float
+    pitch_diameter: float
+    contact_angle: float = 0.0  # degrees
+
+    def orders(self) -> Dict[str, float]:
+        return defect_orders(self.elements, self.element_diameter, self.pitch_diameter, self.contact_angle)
+
+
+@dataclass(frozen=True)
+class EnvelopeConfig:
+    band_hz: Tuple[float, float]
 
 
 @dataclass(frozen=True)
@@ -168,6 +192,8 @@ class Config:
     bands: Tuple[BandConfig, ...]
     health: HealthConfig
     mqtt: Optional[MqttConfig]
+    envelope: Optional[EnvelopeConfig] = None
+    bearings: Tuple[BearingConfig, ...] = ()
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
@@ -520,7 +546,34 @@ def _read_speed(t: _Table, nyquist: float) -> SpeedConfig:
     return SpeedConfig(rpm=rpm, track=track, search_hz=search)
 
 
-def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig) -> BandConfig:
+def _read_bearing(t: _Table) -> BearingConfig:
+    bearing = BearingConfig(
+        name=t.get_name("name"),
+        elements=t.get_int("elements", None, 1, 200),
+        element_diameter=t.get_float("element_diameter", None, lo=0.0, lo_open=True),
+        pitch_diameter=t.get_float("pitch_diameter", None, lo=0.0, lo_open=True),
+        contact_angle=t.get_float("contact_angle", 0.0, lo=0.0, hi=60.0),
+    )
+    if not bearing.element_diameter < bearing.pitch_diameter:
+        raise t.bad("pitch_diameter", bearing.pitch_diameter,
+                    f"a pitch diameter above element_diameter ({bearing.element_diameter:g})")
+    t.finish()
+    return bearing
+
+
+def _order_limit(t: _Table, key: str, value: Any, orders: Tuple[float, float], source: SourceConfig,
+                 speed: SpeedConfig) -> None:
+    """Refuse order edges whose top, at the highest speed possible, passes Nyquist."""
+    assert speed.rpm is not None
+    top_hz = speed.search_hz[1] if speed.track and speed.search_hz else speed.rpm / 60.0
+    nyquist = source.nyquist
+    if nyquist > 0 and orders[1] * top_hz > nyquist:
+        raise t.bad(key, value, f"a high edge at most {nyquist / top_hz:g} orders: "
+                    f"{orders[1]:g} x {top_hz:g} Hz is above the Nyquist frequency {nyquist:g} Hz")
+
+
+def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
+               bearings: Dict[str, BearingConfig]) -> BandConfig:
     name = t.get_name("name")
     if t.has("channel") and t.has("channels"):
         raise t.fail("channels", "give channel or channels, not both")
@@ -540,9 +593,26 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig) -> BandConfi
 
     nyquist = source.nyquist
     hz = orders = None
-    if t.has("hz") and t.has("orders"):
-        raise t.fail("orders", "give hz or orders, not both")
-    if t.has("hz"):
+    bearing = defect = None
+    harmonic = 1
+    given = [k for k in ("hz", "orders", "bearing") if t.has(k)]
+    if len(given) > 1:
+        raise t.fail(given[1], "give one of hz, orders or bearing, not " + " and ".join(given))
+    if t.has("bearing"):
+        bearing = t.get_str("bearing")
+        if bearing not in bearings:
+            raise t.bad("bearing", bearing, "the name of a [[bearing]] table"
+                        + (" (" + ", ".join(bearings) + ")" if bearings else "; there is none"))
+        defect = t.get_str("defect", None, DEFECTS)
+        harmonic = t.get_int("harmonic", 1, 1, 50)
+        width = t.get_float("width", 0.05, lo=0.0, lo_open=True, hi=0.5)
+        if speed.rpm is None:
+            raise t.fail("bearing", "needs [speed] rpm to turn defect orders into Hz")
+        centre = bearings[bearing].orders()[defect] * harmonic
+        orders = (centre * (1.0 - width), centre * (1.0 + width))
+        _order_limit(t, "harmonic" if t.has("harmonic") else "defect", harmonic if t.has("harmonic") else defect,
+                     orders, source, speed)
+    elif t.has("hz"):
         if nyquist > 0:
             hz = t.get_pair("hz", 0.0, nyquist, f"0 <= low < high <= {nyquist:g} (Nyquist)")
         else:  # a recording's rate is only known when it is opened
@@ -551,14 +621,14 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig) -> BandConfi
         orders = t.get_pair("orders", 0.0, math.inf, "0 <= low < high (multiples of running speed)")
         if speed.rpm is None:
             raise t.fail("orders", "needs [speed] rpm to turn orders into Hz")
-        top_hz = speed.search_hz[1] if speed.track and speed.search_hz else speed.rpm / 60.0
-        if nyquist > 0 and orders[1] * top_hz > nyquist:
-            raise t.bad("orders", list(orders), f"a high edge at most {nyquist / top_hz:g} orders: "
-                        f"{orders[1]:g} x {top_hz:g} Hz is above the Nyquist frequency {nyquist:g} Hz")
+        _order_limit(t, "orders", list(orders), orders, source, speed)
     else:
-        raise t.fail("hz", "missing; give hz = [low, high] or orders = [low, high]")
+        raise t.fail("hz", "missing; give hz = [low, high], orders = [low, high] or bearing = NAME")
 
+    spectrum = t.get_str("spectrum", "raw", ("raw", "envelope"))
     quantity = t.get_str("quantity", None, QUANTITIES)
+    if spectrum == "envelope" and quantity != "acceleration":
+        raise t.bad("quantity", quantity, "'acceleration' on an envelope spectrum")
     alert = t.get_optional_float("alert")
     danger = t.get_optional_float("danger")
     if alert is not None and danger is not None and not alert < danger:
@@ -573,9 +643,24 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig) -> BandConfi
         danger=danger,
         hysteresis=t.get_float("hysteresis", 0.1, lo=0.0, hi=0.99),
         delay=t.get_float("delay", 3.0, lo=0.0, hi=86400.0),
+        spectrum=spectrum,
+        bearing=bearing,
+        defect=defect,
+        harmonic=harmonic,
     )
     t.finish()
     return band
+
+
+def _read_envelope(t: _Table, nyquist: float) -> EnvelopeConfig:
+    if not t.has("band_hz"):
+        raise t.fail("band_hz", "missing; the carrier band [low, high] to demodulate")
+    top = nyquist if nyquist > 0 else math.inf
+    band = t.get_pair("band_hz", 0.0, top, f"0 < low < high <= {top:g} (Nyquist)")
+    if band[0] <= 0:
+        raise t.bad("band_hz", list(band), f"[low, high] with 0 < low < high <= {top:g} (Nyquist)")
+    t.finish()
+    return EnvelopeConfig(band_hz=band)
 
 
 def _read_health(t: _Table) -> HealthConfig:
@@ -633,7 +718,7 @@ def _read_mqtt(t: _Table) -> MqttConfig:
     return cfg
 
 
-_SECTIONS = ("node", "source", "spectrum", "speed", "band", "health", "mqtt")
+_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "mqtt")
 
 
 def parse(text: str, file: str = "<config>") -> Config:
@@ -674,18 +759,35 @@ def parse(text: str, file: str = "<config>") -> Config:
     spectrum = _read_spectrum(section("spectrum", False))
     speed = _read_speed(speed_t, source.nyquist if source.nyquist > 0 else math.inf)
 
-    bands: List[BandConfig] = []
-    raw_bands = data.get("band", [])
-    top.used.add("band")
-    if not isinstance(raw_bands, list) or not all(isinstance(b, dict) for b in raw_bands):
-        raise ConfigError(file, "band", "expected [[band]] tables", locator.find("", None, "band"))
+    def array_of(key: str) -> List[_Table]:
+        raw = data.get(key, [])
+        top.used.add(key)
+        if not isinstance(raw, list) or not all(isinstance(b, dict) for b in raw):
+            raise ConfigError(file, key, f"expected [[{key}]] tables", locator.find("", None, key))
+        return [_Table(item, file, locator, key, index) for index, item in enumerate(raw, start=1)]
+
+    def unique(table: _Table, name: str, seen: Dict[str, int]) -> None:
+        if name in seen:
+            raise table.bad("name", name, f"a name not used by {table.table}[{seen[name]}]")
+        seen[name] = table.index or 0
+
+    bearings: Dict[str, BearingConfig] = {}
     seen: Dict[str, int] = {}
-    for index, raw in enumerate(raw_bands, start=1):
-        bt = _Table(raw, file, locator, "band", index)
-        band = _read_band(bt, source, speed)
-        if band.name in seen:
-            raise bt.bad("name", band.name, f"a name not used by band[{seen[band.name]}]")
-        seen[band.name] = index
+    for bt in array_of("bearing"):
+        bearing = _read_bearing(bt)
+        unique(bt, bearing.name, seen)
+        bearings[bearing.name] = bearing
+
+    bands: List[BandConfig] = []
+    seen = {}
+    envelope = None
+    if "envelope" in data:
+        envelope = _read_envelope(section("envelope", True), source.nyquist)
+    for bt in array_of("band"):
+        band = _read_band(bt, source, speed, bearings)
+        unique(bt, band.name, seen)
+        if band.spectrum == "envelope" and envelope is None:
+            raise bt.fail("spectrum", "'envelope' needs an [envelope] section with band_hz")
         bands.append(band)
 
     health = _read_health(section("health", False))
@@ -702,6 +804,8 @@ def parse(text: str, file: str = "<config>") -> Config:
         bands=tuple(bands),
         health=health,
         mqtt=mqtt,
+        envelope=envelope,
+        bearings=tuple(bearings.values()),
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
     )

@@ -19,6 +19,7 @@ from . import __version__
 from .bands import BandBank, BandValue
 from .config import Config
 from .delivery.base import Sink
+from .envelope import EnvelopeStage
 from .health import Change, Health
 from .notify import Notifier
 from .payloads import Payload, num, stamp, utc_now
@@ -47,6 +48,7 @@ class Result:
     dominant_hz: np.ndarray
     dominant_rms: np.ndarray
     bands: List[BandValue]
+    envelope: Optional[Spectrum] = None
 
 
 class EventIds:
@@ -92,6 +94,10 @@ class Monitor:
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self.ring = Ring(channels, spec.span)
         self.stage = SpectralStage(fs, spec.size, spec.window, spec.averages, channels)
+        self.envelope: Optional[EnvelopeStage] = None
+        if cfg.envelope is not None:
+            self.envelope = EnvelopeStage(fs, spec.size, spec.window, spec.averages, channels,
+                                          cfg.envelope.band_hz)
         lines = spec.size // 2 + 1
         self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines)
         self.speed = SpeedTracker(cfg.speed)
@@ -152,6 +158,8 @@ class Monitor:
             self._samples += block.lost
             self.ring.clear()
             self.stage.reset()
+            if self.envelope is not None:
+                self.envelope.reset()
             self._pending = self.config.spectrum.size
         n = block.samples.shape[0]
         counters = self.source.counters() if hasattr(self.source, "counters") else None
@@ -173,12 +181,13 @@ class Monitor:
                 self._frame()
 
     def _frame(self) -> None:
-        size = self.config.spectrum.size
-        spectrum = self.stage.push(self.ring.latest(size))
+        frame = self.ring.latest(self.config.spectrum.size)
+        spectrum = self.stage.push(frame)
+        envelope = self.envelope.push(frame) if self.envelope is not None else None
         if spectrum is None:
             return
         stream_s = (self._samples - 1) / self.fs
-        result = self._measure(spectrum, stream_s)
+        result = self._measure(spectrum, envelope, stream_s)
         self.latest = result
         self.results += 1
         if self.results == 1:
@@ -193,7 +202,7 @@ class Monitor:
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
 
-    def _measure(self, spectrum: Spectrum, stream_s: float) -> Result:
+    def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)
         span = self.ring.latest(self.config.spectrum.span)
         skip = self.stage.window.main_lobe
@@ -208,7 +217,8 @@ class Monitor:
             velocity_rms=self.bank.velocity_rms(spectrum),
             dominant_hz=dominant_hz,
             dominant_rms=dominant_rms,
-            bands=self.bank.evaluate(spectrum, speed_hz),
+            bands=self.bank.evaluate({"raw": spectrum, "envelope": envelope}, speed_hz),
+            envelope=envelope,
         )
 
     # ---------------------------------------------------------------- rules

@@ -393,7 +393,7 @@ CASES = {
     "band-duplicate-name": Case(demo(('name = "2x"', 'name = "1x"')), "band[3].name", ('name = "1x"', 2),
                                 ["'1x'", "band[2]"]),
     "band-hz-and-orders": Case(demo(("orders = [1.8, 2.2]", "orders = [1.8, 2.2]\nhz = [40.0, 60.0]")),
-                               "band[3].orders", "orders = [1.8, 2.2]", ["hz or orders", "not both"]),
+                               "band[3].orders", "orders = [1.8, 2.2]", ["one of hz, orders or bearing", "not hz and orders"]),
     "band-neither-hz-nor-orders": Case(demo(("orders = [1.8, 2.2]\n", "")), "band[3].hz", ("[[band]]", 3),
                                        ["missing", "hz = [low, high]", "orders = [low, high]"]),
     "band-hz-above-nyquist": Case(demo(("hz = [1000.0, 2500.0]", "hz = [1000.0, 3000.0]")), "band[4].hz",
