@@ -67,7 +67,11 @@ class BandValue:
 
 
 class BandBank:
-    """Every (band, channel) pair of the config, evaluated on each spectrum."""
+    """Every (band, channel) pair of the config, evaluated on each spectrum.
+
+    Each pair keeps only the lines its edges touch (a slice and its
+    weights), so a band costs in proportion to its width, not the spectrum's.
+    """
 
     def __init__(
         self,
@@ -88,45 +92,47 @@ class BandBank:
             q: quantity_factors(q, unit, bin_hz, lines) for q in {b.quantity for b, _ in self.pairs}
         }
         # Weights of fixed-Hz bands are computed once; order bands follow the speed.
-        self._fixed: Dict[int, np.ndarray] = {
+        self._fixed: Dict[int, Tuple[int, np.ndarray]] = {
             i: self._weights(band, None) for i, (band, _) in enumerate(self.pairs) if band.hz is not None
         }
+        top = min(SEVERITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines) * line_weights(
-            SEVERITY_HZ[0], min(SEVERITY_HZ[1], bin_hz * (lines - 1)), bin_hz, lines
+            SEVERITY_HZ[0], top, bin_hz, lines
         )
 
-    def _weights(self, band: BandConfig, speed_hz: Optional[float]) -> np.ndarray:
+    def _weights(self, band: BandConfig, speed_hz: Optional[float]) -> Tuple[int, np.ndarray]:
+        """First line and the weights of the lines from there that the band touches."""
         lo, hi = band.edges_hz(speed_hz)
-        return line_weights(lo, hi, self.bin_hz, self.lines) * self._factors[band.quantity]
+        first = max(1, int(np.floor(lo / self.bin_hz - 0.5)))
+        last = min(self.lines - 1, int(np.ceil(hi / self.bin_hz + 0.5)))
+        if last < first:
+            return first, np.zeros(0)
+        k = np.arange(first, last + 1)
+        left = np.maximum((k - 0.5) * self.bin_hz, lo)
+        right = np.minimum((k + 0.5) * self.bin_hz, hi)
+        weights = np.clip((right - left) / self.bin_hz, 0.0, 1.0)
+        return first, weights * self._factors[band.quantity][first : last + 1]
 
     def evaluate(self, spectra: Union[Spectrum, Mapping[str, Spectrum]],
                  speed_hz: Optional[float]) -> List[BandValue]:
         """Band values at the current running speed. `spectra` maps each
         band's `spectrum` ("raw", "envelope") to its Spectrum; a lone
         Spectrum serves as "raw"."""
-        if not self.pairs:
-            return []
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
-        weights = np.empty((len(self.pairs), self.lines))
-        rows = np.empty((len(self.pairs), self.lines))
+        out = []
         for i, (band, ch) in enumerate(self.pairs):
-            fixed = self._fixed.get(i)
-            weights[i] = fixed if fixed is not None else self._weights(band, speed_hz)
-            rows[i] = spectra[band.spectrum].psd[ch]
-        power = np.einsum("pk,pk->p", rows, weights) * self.bin_hz
-        values = np.sqrt(power)
-        return [
-            BandValue(
+            first, weights = self._fixed.get(i) or self._weights(band, speed_hz)
+            psd = spectra[band.spectrum].psd[ch, first : first + len(weights)]
+            out.append(BandValue(
                 name=band.name,
                 channel=self.channels[ch],
                 quantity=band.quantity,
                 unit=quantity_unit(band.quantity, self.unit),
-                value=float(values[i]),
+                value=float(np.sqrt(np.dot(psd, weights) * self.bin_hz)),
                 edges_hz=band.edges_hz(speed_hz),
-            )
-            for i, (band, ch) in enumerate(self.pairs)
-        ]
+            ))
+        return out
 
     def velocity_rms(self, spectrum: Spectrum) -> np.ndarray:
         """Broadband RMS velocity over 10-1000 Hz (capped at Nyquist), mm/s,

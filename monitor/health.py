@@ -119,7 +119,7 @@ class Health:
         self._update(self.stale, 0.0, t, out)
         totals: Dict[str, float] = dict(counters or {})
         self._count_block(raw, full_scale, totals)
-        self._windowed(t, totals, out)
+        self._windowed(t, totals, lost > 0, out)
         self._flatline(raw, lost, t, out)
         self._rate(start_index, lost, timestamp_us, t, out)
         return out
@@ -148,10 +148,12 @@ class Health:
                 own[f"clipped{i}"] += int(n)
         totals.update(own)
 
-    def _windowed(self, t: float, totals: Dict[str, float], out: List[Change]) -> None:
+    def _windowed(self, t: float, totals: Dict[str, float], gap: bool, out: List[Change]) -> None:
         snaps = self._snapshots
         if t - snaps[-1][0] >= _SNAPSHOT_S:
             snaps.append((t, totals))
+        elif not gap:
+            return  # judged with the next snapshot, at most _SNAPSHOT_S later
         while len(snaps) > 1 and snaps[1][0] <= t - self.config.window:
             snaps.popleft()
         _, old = snaps[0]
@@ -171,15 +173,28 @@ class Health:
         n = raw.shape[0]
         if n == 0:
             return
-        # changed[i, c]: sample i of channel c differs from the one before it.
-        changed = np.empty(raw.shape, dtype=bool)
-        changed[1:] = raw[1:] != raw[:-1]
-        changed[0] = True if self._last_row is None or lost else raw[0] != self._last_row
         block_start = t - (n - 1) / self.fs
+        # Index of each channel's last change in this block (-1: none), the
+        # first sample compared with the previous block's last. A moving
+        # channel almost always changes at its last sample: check that first.
+        last = np.full(raw.shape[1], n - 1)
+        if n > 1:
+            tail_still = raw[-1] == raw[-2]
+            if tail_still.any():
+                cols = np.flatnonzero(tail_still)
+                changed = raw[1:, cols] != raw[:-1, cols]
+                found = n - 1 - np.argmax(changed[::-1], axis=0)
+                last[cols] = np.where(changed.any(axis=0), found, -1)
+        else:
+            last[:] = -1
+        if self._last_row is None or lost:
+            first_moved = np.ones(raw.shape[1], dtype=bool)
+        else:
+            first_moved = raw[0] != self._last_row
+        last = np.where((last < 0) & first_moved, 0, last)
         for i, check in enumerate(self.flatline):
-            moved = np.flatnonzero(changed[:, i])
-            if moved.size:
-                self._flat_since[i] = block_start + moved[-1] / self.fs
+            if last[i] >= 0:
+                self._flat_since[i] = block_start + last[i] / self.fs
             elif self._flat_since[i] is None:
                 self._flat_since[i] = block_start
             self._update(check, t - self._flat_since[i], t, out)

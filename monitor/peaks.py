@@ -39,5 +39,5 @@ def interpolate_peak(
         ratio = np.where(peak > 0, neighbour / peak, 0.0)
     offset = window.offset_from_ratio(ratio)
     freq = (k + side * offset) * bin_hz
-    amplitude = peak / window.kernel(offset)
+    amplitude = peak / window.gain_at(offset)
     return freq, amplitude

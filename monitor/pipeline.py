@@ -11,7 +11,8 @@ import math
 import threading
 import time
 from dataclasses import dataclass
-from typing import Callable, Dict, List, Optional
+from functools import cached_property
+from typing import Callable, List, Optional, Tuple
 
 import numpy as np
 
@@ -38,17 +39,35 @@ READ_TIMEOUT_S = 0.2
 
 @dataclass
 class Result:
-    """Everything measured at one hop."""
+    """Everything measured at one hop. What rules do not need (the dominant
+    peak, broadband velocity) is computed on first use: most results only
+    feed the rules, and only summaries and events read the rest."""
 
     stream_s: float
     speed_hz: Optional[float]
     spectrum: Spectrum
-    stats: Dict[str, np.ndarray]  # rms, peak, crest, kurtosis per channel
-    velocity_rms: np.ndarray
-    dominant_hz: np.ndarray
-    dominant_rms: np.ndarray
     bands: List[BandValue]
+    bank: BandBank
     envelope: Optional[Spectrum] = None
+
+    @cached_property
+    def dominant(self) -> Tuple[np.ndarray, np.ndarray]:
+        """Frequency and RMS of each channel's strongest line above DC's lobe."""
+        spec = self.spectrum
+        return interpolate_peak(spec.rms_amplitude, spec.window, spec.bin_hz, spec.window.main_lobe,
+                                spec.psd.shape[1] - 1)
+
+    @property
+    def dominant_hz(self) -> np.ndarray:
+        return self.dominant[0]
+
+    @property
+    def dominant_rms(self) -> np.ndarray:
+        return self.dominant[1]
+
+    @cached_property
+    def velocity_rms(self) -> np.ndarray:
+        return self.bank.velocity_rms(self.spectrum)
 
 
 class EventIds:
@@ -204,20 +223,12 @@ class Monitor:
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)
-        span = self.ring.latest(self.config.spectrum.span)
-        skip = self.stage.window.main_lobe
-        dominant_hz, dominant_rms = interpolate_peak(
-            spectrum.rms_amplitude, spectrum.window, spectrum.bin_hz, skip, spectrum.psd.shape[1] - 1
-        )
         return Result(
             stream_s=stream_s,
             speed_hz=speed_hz,
             spectrum=spectrum,
-            stats=time_stats(span),
-            velocity_rms=self.bank.velocity_rms(spectrum),
-            dominant_hz=dominant_hz,
-            dominant_rms=dominant_rms,
             bands=self.bank.evaluate({"raw": spectrum, "envelope": envelope}, speed_hz),
+            bank=self.bank,
             envelope=envelope,
         )
 
@@ -286,13 +297,16 @@ class Monitor:
     def _summary_payload(self, result: Result) -> Payload:
         payload = stamp(self.node, result.stream_s)
         unit = self.config.source.unit
+        # Called within the frame that made `result`: the ring still holds
+        # exactly the samples the result covers.
+        stats = time_stats(self.ring.latest(self.config.spectrum.span))
         channels = {}
         for i, name in enumerate(self.config.source.channels):
             channels[name] = {
-                "rms": num(result.stats["rms"][i]),
-                "peak": num(result.stats["peak"][i]),
-                "crest": num(result.stats["crest"][i]),
-                "kurtosis": num(result.stats["kurtosis"][i]),
+                "rms": num(stats["rms"][i]),
+                "peak": num(stats["peak"][i]),
+                "crest": num(stats["crest"][i]),
+                "kurtosis": num(stats["kurtosis"][i]),
                 "velocity_rms": num(result.velocity_rms[i]),
                 "dominant_hz": num(result.dominant_hz[i]),
                 "dominant_rms": num(result.dominant_rms[i]),

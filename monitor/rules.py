@@ -36,6 +36,7 @@ class LevelMachine:
         self.index = 0  # 0 = normal, i = self.limits[i - 1]
         self._above: List[Optional[float]] = [None] * len(self.limits)
         self._below: List[Optional[float]] = [None] * len(self.limits)
+        self._floor = min((v for _, v in self.limits), default=math.inf)
 
     @property
     def level(self) -> str:
@@ -46,6 +47,13 @@ class LevelMachine:
         if value is None or not math.isfinite(value):
             self._above = [None] * len(self.limits)
             self._below = [None] * len(self.limits)
+            return None
+        if self.index == 0 and value < self._floor:
+            # The common case, kept cheap: nothing raised, nothing rising.
+            # The "below" timers only matter once a level is raised, and a
+            # raise happens with the value above every lower limit's clear point.
+            if any(a is not None for a in self._above):
+                self._above = [None] * len(self.limits)
             return None
         for i, (_, limit) in enumerate(self.limits):
             if value >= limit:

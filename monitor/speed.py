@@ -36,12 +36,13 @@ class SpeedTracker:
         self.locked = False
         if hi - lo < 2:
             return self.speed_hz
-        power = spectrum.power.sum(axis=0)
-        part = power[lo : hi + 1]
-        k = lo + int(np.argmax(part))
-        if k in (lo, hi) or power[k] < _CLEAR_OF_FLOOR * float(np.median(part)):
+        # Power summed over channels, over the search range and a line beyond.
+        part = spectrum.psd[:, lo - 1 : hi + 2].sum(axis=0)
+        inner = part[1:-1]
+        j = int(np.argmax(inner))
+        if j in (0, len(inner) - 1) or inner[j] < _CLEAR_OF_FLOOR * float(np.median(inner)):
             return self.speed_hz
-        freq, _ = interpolate_peak(np.sqrt(power)[None, :], spectrum.window, spectrum.bin_hz, k, k)
-        self.speed_hz = float(freq[0])
+        freq, _ = interpolate_peak(np.sqrt(part)[None, :], spectrum.window, spectrum.bin_hz, j + 1, j + 1)
+        self.speed_hz = float(freq[0]) + (lo - 1) * spectrum.bin_hz
         self.locked = True
         return self.speed_hz

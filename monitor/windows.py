@@ -53,7 +53,7 @@ class Window:
         self.coherent_gain = self.sum / size
         self.enbw_bins = size * self.sum_sq / self.sum**2
         self.main_lobe = MAIN_LOBE_BINS[name]
-        self._ratio_offsets, self._ratios = _ratio_table(name, size)
+        self._ratio_offsets, self._ratios, self._gains = _ratio_table(name, size)
 
     def kernel(self, offset_bins: np.ndarray) -> np.ndarray:
         """|W(offset)| / W(0): the window's response to a tone `offset` bins away."""
@@ -63,6 +63,10 @@ class Window:
         """Tone offset (0..0.5 bin) toward the larger neighbour, from
         ratio = |X[k+-1]| / |X[k]| of the peak bin k and that neighbour."""
         return np.interp(ratio, self._ratios, self._ratio_offsets)
+
+    def gain_at(self, offset: np.ndarray) -> np.ndarray:
+        """`kernel` for offsets in 0..0.5 bin, read from the table built once."""
+        return np.interp(offset, self._ratio_offsets, self._gains)
 
     def scalloping_loss_db(self) -> float:
         """Loss of a tone half-way between two bins, in dB."""
@@ -99,11 +103,13 @@ def _dirichlet(x: np.ndarray, size: int) -> np.ndarray:
 
 
 @lru_cache(maxsize=32)
-def _ratio_table(name: str, size: int) -> Tuple[np.ndarray, np.ndarray]:
-    """Ratio |W(1 - d)| / |W(d)| against d in [0, 0.5], increasing in d."""
+def _ratio_table(name: str, size: int) -> Tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Against d in [0, 0.5]: the ratio |W(1 - d)| / |W(d)| (increasing in
+    d) and the gain |W(d)|."""
     coefficients = np.asarray(COEFFICIENTS[name], dtype=float)
     d = np.linspace(0.0, 0.5, _TABLE_POINTS)
-    ratio = _kernel(coefficients, size, 1.0 - d) / _kernel(coefficients, size, d)
+    gain = _kernel(coefficients, size, d)
+    ratio = _kernel(coefficients, size, 1.0 - d) / gain
     # The ratio rises with d for every window here; keep it strictly so.
     ratio = np.maximum.accumulate(ratio)
-    return d, ratio
+    return d, ratio, gain
