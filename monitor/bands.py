@@ -121,15 +121,21 @@ class BandBank:
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
         out = []
+        moving: Dict[int, Tuple[int, np.ndarray]] = {}  # weights per band, shared by its channels
         for i, (band, ch) in enumerate(self.pairs):
-            first, weights = self._fixed.get(i) or self._weights(band, speed_hz)
-            psd = spectra[band.spectrum].psd[ch, first : first + len(weights)]
+            weights = self._fixed.get(i)
+            if weights is None:
+                weights = moving.get(id(band))
+                if weights is None:
+                    weights = moving[id(band)] = self._weights(band, speed_hz)
+            first, w = weights
+            psd = spectra[band.spectrum].psd[ch, first : first + len(w)]
             out.append(BandValue(
                 name=band.name,
                 channel=self.channels[ch],
                 quantity=band.quantity,
                 unit=quantity_unit(band.quantity, self.unit),
-                value=float(np.sqrt(np.dot(psd, weights) * self.bin_hz)),
+                value=float(np.sqrt(np.dot(psd, w) * self.bin_hz)),
                 edges_hz=band.edges_hz(speed_hz),
             ))
         return out

@@ -6,7 +6,7 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | check    | scope   | value                                                    | fault at or above |
 | -------- | ------- | -------------------------------------------------------- | ----------------- |
 | stale    | source  | seconds without samples (wall clock)                     | `stale`           |
-| gap      | source  | sequence gaps in the last `window` s of stream           | 1                 |
+| gap      | source  | breaks in the samples (sequence jumps, dropped blocks, reconnects) in the last `window` s | 1 |
 | corrupt  | source  | share of frames (or lines) rejected in the last `window` | `corrupt`         |
 | clipping | channel | share of samples at the integer type's full scale, last `window` | `clipping` |
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
@@ -85,7 +85,7 @@ class Health:
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
         self._line_mask: Optional[np.ndarray] = None
         # Totals for what sources do not count themselves.
-        self._own: Dict[str, int] = {"samples": 0}
+        self._own: Dict[str, int] = {"samples": 0, "breaks": 0}
         self._own.update({f"clipped{i}": 0 for i in range(len(self.channels))})
 
     @staticmethod
@@ -118,7 +118,7 @@ class Health:
         out: List[Change] = []
         self._update(self.stale, 0.0, t, out)
         totals: Dict[str, float] = dict(counters or {})
-        self._count_block(raw, full_scale, totals)
+        self._count_block(raw, lost, full_scale, totals)
         self._windowed(t, totals, lost > 0, out)
         self._flatline(raw, lost, t, out)
         self._rate(start_index, lost, timestamp_us, t, out)
@@ -139,10 +139,15 @@ class Health:
 
     # ------------------------------------------------------------ details
 
-    def _count_block(self, raw: np.ndarray, full_scale: Optional[float], totals: Dict[str, float]) -> None:
+    def _count_block(self, raw: np.ndarray, lost: int, full_scale: Optional[float],
+                     totals: Dict[str, float]) -> None:
         own = self._own
         own["samples"] += raw.shape[0]
-        if full_scale is not None:
+        # Every break in the samples, whatever caused it: a sequence jump, a
+        # dropped block when the pipeline fell behind, a reconnect.
+        own["breaks"] += 1 if lost > 0 else 0
+        # Cheap test first: most blocks have no sample near full scale.
+        if full_scale is not None and raw.size and (raw.max() >= full_scale or raw.min() <= -full_scale):
             clipped = np.count_nonzero(np.abs(raw) >= full_scale, axis=0)
             for i, n in enumerate(clipped):
                 own[f"clipped{i}"] += int(n)
@@ -161,7 +166,7 @@ class Health:
         def delta(key: str) -> float:
             return float(totals.get(key, 0) - old.get(key, 0))
 
-        self._update(self.gap, delta("gaps"), t, out)
+        self._update(self.gap, delta("breaks"), t, out)
         rejected = delta("corrupt_frames") + delta("mismatched") + delta("nonfinite")
         seen = delta("frames") + rejected
         self._update(self.corrupt, rejected / seen if seen > 0 else 0.0, t, out)

@@ -4,6 +4,8 @@
 ("frame" or "csv"). A decoder is fed whatever bytes arrived and returns the
 sample blocks it could complete; it keeps a bounded tail of partial input
 between calls, resynchronises on garbage and counts what it had to throw away.
+
+The binary frame format lives in `frame.py`, the text format in `text.py`.
 """
 
 from typing import Dict, List, NamedTuple, Optional
@@ -49,6 +51,25 @@ class Decoder:
         reconnect or an unplug)."""
         raise NotImplementedError
 
+    @property
+    def buffered(self) -> int:
+        """Bytes of partial input held until more arrives (bounded per format)."""
+        return 0
+
+
+FORMATS = ("frame", "csv")
+
 
 def make_decoder(format: str, channels: int) -> Decoder:
-    raise NotImplementedError("filled in by the frame and csv decoders")
+    """A fresh decoder for `format` ("frame" or "csv") and `channels` channels."""
+    if isinstance(channels, bool) or not isinstance(channels, int) or not 1 <= channels <= 16:
+        raise ValueError(f"{channels=} is not a channel count between 1 and 16")
+    if format == "frame":
+        from .frame import FrameDecoder
+
+        return FrameDecoder(channels)
+    if format == "csv":
+        from .text import CsvDecoder
+
+        return CsvDecoder(channels)
+    raise ValueError(f"{format=} is not a known stream format; expected one of {', '.join(FORMATS)}")

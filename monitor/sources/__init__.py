@@ -14,6 +14,11 @@ from .base import Block, Source
 # cannot run yet; `open_source` says so plainly.
 _KINDS: Dict[str, Tuple[str, str]] = {
     "simulator": (".simulator", "SimulatorSource"),
+    "file": (".file", "FileSource"),
+    "serial": (".serial_port", "SerialSource"),
+    "tcp-client": (".tcp", "TcpClientSource"),
+    "tcp-server": (".tcp", "TcpServerSource"),
+    "udp": (".udp", "UdpSource"),
 }
 
 
