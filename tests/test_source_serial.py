@@ -15,10 +15,7 @@ import numpy as np
 import pytest
 import serial
 
-try:  # tests/ is a package: pytest imports its conftest as tests.conftest
-    from tests.conftest import need_program
-except ImportError:
-    from conftest import need_program
+from conftest import need_program
 from monitor.config import SourceConfig
 from monitor.decoders.frame import encode_frame
 from monitor.sources import open_source
