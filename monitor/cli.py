@@ -93,6 +93,7 @@ def _run(config: Config) -> int:
     from .notify import Notifier
     from .pipeline import Monitor
     from .sources import open_source
+    from .state import EventIds
 
     stop = threading.Event()
 
@@ -115,8 +116,9 @@ def _run(config: Config) -> int:
         log.error("cannot open the source: %s", exc)
         return EXIT_FAILURE
     try:
+        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
         sink = open_sink(config)
-        monitor = Monitor(config, source, sink, notifier=Notifier())
+        monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier())
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
                  len(config.source.channels), source.sample_rate)
         monitor.run(stop)

@@ -12,6 +12,7 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | alias    | channel | share of the power in the top 10 % below Nyquist         | `alias`           |
+| queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
 
 Counts come from the source's cumulative counters (`counters()`, where the
 source has them), differenced over a sliding window of stream time.
@@ -70,13 +71,16 @@ class Health:
         # Alias: a little hysteresis and delay, since the share of a noisy
         # spectrum wavers around any limit.
         self.alias = [check("alias", c, "share", config.alias, 0.2, 2.0) for c in self.channels]
+        self.queue = check("queue", None, "count", 1.0)
         self.checks: List[Check] = (
             [self.stale, self.gap, self.corrupt]
             + self.clipping
             + self.flatline
             + [self.rate]
             + self.alias
+            + [self.queue]
         )
+        self._dropped_base = 0
         # Counter snapshots over the window, oldest first; the first stands
         # for "before any sample", so a fresh monitor judges all it has seen.
         self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
@@ -135,6 +139,15 @@ class Health:
         for i, check in enumerate(self.alias):
             share = float(top[i] / total[i]) if total[i] > 0 else None
             self._update(check, share, t, out)
+        return out
+
+    def on_delivery(self, dropped: int, queued: int, t: float) -> List[Change]:
+        """The sink's drop total (only grows) and its queue length now. The
+        fault stands from the first drop until the queue has emptied."""
+        out: List[Change] = []
+        if queued == 0:
+            self._dropped_base = dropped
+        self._update(self.queue, float(dropped - self._dropped_base), t, out)
         return out
 
     # ------------------------------------------------------------ details

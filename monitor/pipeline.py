@@ -28,6 +28,7 @@ from .peaks import interpolate_peak
 from .ring import Ring
 from .rules import BAND_LEVELS, LevelMachine
 from .sources.base import Block, Source
+from .state import EventIds
 from .spectrum import SpectralStage, Spectrum
 from .speed import SpeedTracker
 from .stats import time_stats
@@ -68,18 +69,6 @@ class Result:
     @cached_property
     def velocity_rms(self) -> np.ndarray:
         return self.bank.velocity_rms(self.spectrum)
-
-
-class EventIds:
-    """Event ids, +1 per event. Kept in memory; a persistent store can replace it."""
-
-    def __init__(self, start: int = 1) -> None:
-        self._next = start
-
-    def take(self) -> int:
-        value = self._next
-        self._next += 1
-        return value
 
 
 class Monitor:
@@ -213,6 +202,7 @@ class Monitor:
             self.notifier.ready(self.status_line(result))
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
+        changed |= self._emit_health(self.health.on_delivery(self.sink.dropped, self.sink.queued, stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:

@@ -130,5 +130,12 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("alias", "x"), ("alias", "y"),
+        ("alias", "x"), ("alias", "y"), ("queue", None),
     }
+
+
+def test_queue_fault_from_first_drop_until_the_queue_empties():
+    h = health()
+    steps = [(0, 0), (0, 500), (3, 1000), (7, 1000), (7, 20), (7, 0), (7, 0), (9, 1000)]
+    out = [(i, *x) for i, (d, q) in enumerate(steps) for x in names(h.on_delivery(d, q, float(i)))]
+    assert out == [(2, "queue", None, "fault"), (5, "queue", None, "normal"), (7, "queue", None, "fault")]

@@ -27,7 +27,14 @@ class Sink:
     payloads (the offline one is the will, where the backend has one), then
     `send` for every summary, event and levels payload, then `close` with the
     offline status. `send` must never block the measurement path for long.
+
+    `queued` and `dropped` tell how many events wait for the broker and how
+    many were dropped by the queue bound since start (a backend without a
+    queue keeps both 0).
     """
+
+    queued = 0
+    dropped = 0
 
     def open(self, online: Payload, offline: Payload) -> None:
         raise NotImplementedError
