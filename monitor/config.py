@@ -178,8 +178,20 @@ class MqttConfig:
     password_file: str = ""
     tls: bool = False
     ca_file: str = ""
+    cert_file: str = ""  # client certificate (PEM), for brokers that ask for one
+    key_file: str = ""
     queue_dir: str = "/var/lib/bandwatch"
     queue_limit: int = 10000
+
+
+@dataclass(frozen=True)
+class CaptureConfig:
+    """Raw samples around an alarm, written as recordings."""
+
+    seconds: float = 10.0  # kept before the trigger
+    after: float = 5.0  # written after it
+    keep: int = 20  # newest files kept; older ones are deleted
+    dir: str = "/var/lib/bandwatch/captures"
 
 
 @dataclass(frozen=True)
@@ -194,6 +206,7 @@ class Config:
     mqtt: Optional[MqttConfig]
     envelope: Optional[EnvelopeConfig] = None
     bearings: Tuple[BearingConfig, ...] = ()
+    capture: Optional[CaptureConfig] = None
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
@@ -652,6 +665,19 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     return band
 
 
+def _read_capture(t: _Table) -> CaptureConfig:
+    capture = CaptureConfig(
+        seconds=t.get_float("seconds", 10.0, lo=0.0, lo_open=True, hi=600.0),
+        after=t.get_float("after", 5.0, lo=0.0, hi=600.0),
+        keep=t.get_int("keep", 20, 1, 10000),
+        dir=t.get_str("dir", "/var/lib/bandwatch/captures"),
+    )
+    if not capture.dir:
+        raise t.bad("dir", "", "a directory for capture recordings")
+    t.finish()
+    return capture
+
+
 def _read_envelope(t: _Table, nyquist: float) -> EnvelopeConfig:
     if not t.has("band_hz"):
         raise t.fail("band_hz", "missing; the carrier band [low, high] to demodulate")
@@ -703,6 +729,8 @@ def _read_mqtt(t: _Table) -> MqttConfig:
         password_file=t.get_str("password_file", ""),
         tls=t.get_bool("tls", False),
         ca_file=t.get_str("ca_file", ""),
+        cert_file=t.get_str("cert_file", ""),
+        key_file=t.get_str("key_file", ""),
         queue_dir=t.get_str("queue_dir", "/var/lib/bandwatch"),
         queue_limit=t.get_int("queue_limit", 10000, 1, 10_000_000),
     )
@@ -712,13 +740,18 @@ def _read_mqtt(t: _Table) -> MqttConfig:
         raise t.bad("password_file", cfg.password_file, "no password_file while username is empty")
     if cfg.ca_file and not cfg.tls:
         raise t.bad("ca_file", cfg.ca_file, "no ca_file while tls = false")
+    if (cfg.cert_file or cfg.key_file) and not cfg.tls:
+        key = "cert_file" if cfg.cert_file else "key_file"
+        raise t.bad(key, getattr(cfg, key), f"no {key} while tls = false")
+    if cfg.key_file and not cfg.cert_file:
+        raise t.bad("key_file", cfg.key_file, "a key_file only beside a cert_file")
     if not cfg.queue_dir:
         raise t.bad("queue_dir", "", "a directory for the on-disk event queue")
     t.finish()
     return cfg
 
 
-_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "mqtt")
+_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "capture", "mqtt")
 
 
 def parse(text: str, file: str = "<config>") -> Config:
@@ -791,6 +824,7 @@ def parse(text: str, file: str = "<config>") -> Config:
         bands.append(band)
 
     health = _read_health(section("health", False))
+    capture = _read_capture(section("capture", True)) if "capture" in data else None
     mqtt = None
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
@@ -806,6 +840,7 @@ def parse(text: str, file: str = "<config>") -> Config:
         mqtt=mqtt,
         envelope=envelope,
         bearings=tuple(bearings.values()),
+        capture=capture,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
     )
