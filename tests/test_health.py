@@ -139,3 +139,47 @@ def test_queue_fault_from_first_drop_until_the_queue_empties():
     steps = [(0, 0), (0, 500), (3, 1000), (7, 1000), (7, 20), (7, 0), (7, 0), (9, 1000)]
     out = [(i, *x) for i, (d, q) in enumerate(steps) for x in names(h.on_delivery(d, q, float(i)))]
     assert out == [(2, "queue", None, "fault"), (5, "queue", None, "normal"), (7, "queue", None, "fault")]
+
+
+def test_clipped_int16_recording_raises_clipping_through_the_pipeline(tmp_path):
+    # A plain int16 WAV written by the standard library's wave module; the
+    # second channel saturates at the type's limits (32767 / -32768) for 2 %
+    # of its samples, as an overdriven sensor would.
+    import wave
+
+    from monitor.config import parse
+    from monitor.pipeline import Monitor
+    from monitor.sources import open_source
+    from test_pipeline import ListSink
+
+    n = 20000
+    x = (np.sin(2 * np.pi * 50 * np.arange(n) / FS) * 20000).astype(np.int16)
+    y = x.copy()
+    y[::50] = 32767
+    y[25::50] = -32768
+    path = tmp_path / "clipped.wav"
+    with wave.open(str(path), "wb") as w:
+        w.setnchannels(2)
+        w.setsampwidth(2)
+        w.setframerate(int(FS))
+        w.writeframes(np.column_stack([x, y]).tobytes())
+    config = parse(f"""
+[node]
+name = "clip"
+[source]
+kind = "file"
+path = "{path}"
+channels = ["x", "y"]
+scale = 0.0001
+[spectrum]
+size = 1024
+[health]
+clipping = 0.01
+""")
+    source = open_source(config.source)
+    source.open()
+    sink = ListSink()
+    Monitor(config, source, sink).run()
+    events = [(e["name"], e["channel"], e["level"]) for e in sink.of("event")]
+    assert events == [("clipping", "y", "fault")]
+    assert sink.of("event")[0]["value"] == pytest.approx(0.04, rel=0.05)

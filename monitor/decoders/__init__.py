@@ -17,11 +17,14 @@ class Decoded(NamedTuple):
     """Samples of one frame (or one run of CSV lines), shaped (n, channels),
     raw values before scale. `lost` counts samples per channel missing just
     before these (a sequence gap). `timestamp_us` is the frame's timestamp of
-    its first sample, when it carried one."""
+    its first sample, when it carried one. `full_scale` is the largest
+    positive value of the frame's integer sample type (None for floats and
+    text), for the clipping check."""
 
     samples: np.ndarray
     lost: int = 0
     timestamp_us: Optional[int] = None
+    full_scale: Optional[float] = None
 
 
 class Decoder:

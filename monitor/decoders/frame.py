@@ -212,8 +212,12 @@ class FrameDecoder(Decoder):
             self._pending_lost += lost + n
             return
         counters["frames"] += 1
-        out.append(Decoded(samples, lost + self._pending_lost, timestamp))
+        out.append(Decoded(samples, lost + self._pending_lost, timestamp, _FULL_SCALE.get(stype)))
         self._pending_lost = 0
+
+
+# Largest positive value of each integer sample type: samples there are clipped.
+_FULL_SCALE = {INT16: 32767.0, INT32: 2147483647.0}
 
 
 def encode_frame(

@@ -22,12 +22,16 @@ log = logging.getLogger("bandwatch.sources")
 BLOCK_SECONDS = 0.1
 
 
+_FULL_SCALE = {"uint8": 127.0, "int16": 32767.0, "int24": 8388607.0, "int32": 2147483647.0}
+
+
 class FileSource(Source):
     kind = "file"
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
         self._reader: Optional[RecordingReader] = None
+        self._full_scale: Optional[float] = None
         self.block = 0
 
     def _open(self) -> None:
@@ -41,6 +45,9 @@ class FileSource(Source):
         self._reader = reader
         self.sample_rate = float(reader.sample_rate)
         self.block = max(1, int(round(reader.sample_rate * BLOCK_SECONDS)))
+        # Integer recordings clip at their type's largest value (uint8 is
+        # widened to -128..127).
+        self._full_scale = _FULL_SCALE.get(reader.sample_type)
         self.ended = False
 
     def _check(self, reader: RecordingReader) -> None:
@@ -70,7 +77,7 @@ class FileSource(Source):
         if samples.shape[0] == 0:
             self.ended = True
             return None
-        return Block(samples.astype(np.float64))
+        return Block(samples.astype(np.float64), 0, self._full_scale)
 
     def _close(self) -> None:
         if self._reader is not None:

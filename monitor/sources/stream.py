@@ -213,21 +213,26 @@ class StreamSource(Source):
         parts: List[np.ndarray] = []
         lost = 0
         stamp: Optional[int] = None
+        full_scale: Optional[float] = None
         for piece in decoded:
-            if parts and piece.lost:
-                self._emit(parts, lost, stamp)
+            # A new block at a gap, and where the sample type changes (so a
+            # block has one full scale for the clipping check).
+            if parts and (piece.lost or piece.full_scale != full_scale):
+                self._emit(parts, lost, stamp, full_scale)
                 parts, lost = [], 0
             if not parts:
                 stamp = piece.timestamp_us
+                full_scale = piece.full_scale
             lost += piece.lost
             if piece.samples.shape[0]:
                 parts.append(piece.samples)
         if parts:
-            self._emit(parts, lost, stamp)
+            self._emit(parts, lost, stamp, full_scale)
         else:
             self._carry += lost
 
-    def _emit(self, parts: List[np.ndarray], lost: int, stamp: Optional[int]) -> None:
+    def _emit(self, parts: List[np.ndarray], lost: int, stamp: Optional[int],
+              full_scale: Optional[float] = None) -> None:
         samples = parts[0] if len(parts) == 1 else np.concatenate(parts)
         samples = np.asarray(samples, dtype=np.float64)
         now = time.monotonic()
@@ -239,9 +244,7 @@ class StreamSource(Source):
             held = (now - self._last_arrival) * self.sample_rate - samples.shape[0]
             lost += max(1, int(round(held)))
         self._last_arrival = now
-        # Decoded does not say which raw type a frame used, so full_scale
-        # (for the clipping check) stays unknown here.
-        self._put(Block(samples, lost, None, stamp))
+        self._put(Block(samples, lost, full_scale, stamp))
 
     def _put(self, block: Block) -> None:
         with self._ready:
