@@ -101,10 +101,13 @@ def _run(config: Config) -> int:
         log.info("received %s, stopping", signal.Signals(signum).name)
         stop.set()
 
+    monitor = None
+
     def on_hangup(_signum: int, _frame: object) -> None:
-        # Without a handler SIGHUP would end the process (systemctl reload).
-        log.warning("reloading the config is not available in this version; "
-                    "restart the service to apply a changed config")
+        # systemctl reload: re-read the file in the measuring loop.
+        if monitor is not None:
+            log.info("received SIGHUP, reloading %s", config.path)
+            monitor.request_reload(lambda: load(config.path))
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)

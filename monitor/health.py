@@ -13,6 +13,7 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | alias    | channel | share of the power in the top 10 % below Nyquist         | `alias`           |
 | queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
+| config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
 Counts come from the source's cumulative counters (`counters()`, where the
 source has them), differenced over a sliding window of stream time.
@@ -72,13 +73,14 @@ class Health:
         # spectrum wavers around any limit.
         self.alias = [check("alias", c, "share", config.alias, 0.2, 2.0) for c in self.channels]
         self.queue = check("queue", None, "count", 1.0)
+        self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
             [self.stale, self.gap, self.corrupt]
             + self.clipping
             + self.flatline
             + [self.rate]
             + self.alias
-            + [self.queue]
+            + [self.queue, self.config_check]
         )
         self._dropped_base = 0
         # Counter snapshots over the window, oldest first; the first stands
@@ -148,6 +150,12 @@ class Health:
         if queued == 0:
             self._dropped_base = dropped
         self._update(self.queue, float(dropped - self._dropped_base), t, out)
+        return out
+
+    def on_config(self, refused: bool, t: float) -> List[Change]:
+        """The outcome of a reload: refused (a bad file) or taken."""
+        out: List[Change] = []
+        self._update(self.config_check, 1.0 if refused else 0.0, t, out)
         return out
 
     # ------------------------------------------------------------ details

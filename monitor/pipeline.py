@@ -6,19 +6,21 @@ every hop gives one frame and every `averages` frames one result. Stream
 time is counted from samples (lost samples included), never from the clock.
 """
 
+import dataclasses
 import logging
 import math
 import threading
 import time
 from dataclasses import dataclass
 from functools import cached_property
-from typing import Callable, List, Optional, Tuple
+from typing import Callable, Dict, List, Optional, Tuple
 
 import numpy as np
 
 from . import __version__
 from .bands import BandBank, BandValue
 from .config import Config
+from .errors import ConfigError
 from .delivery.base import Sink
 from .envelope import EnvelopeStage
 from .health import Change, Health
@@ -87,6 +89,9 @@ class Monitor:
         self.ids = ids or EventIds()
         self.clock = clock
         self.notifier = notifier or Notifier(environ={})
+        self._reload_requested = threading.Event()
+        self._loader: Optional[Callable[[], Config]] = None
+        self.ring_kept = True
         self.node = config.node
         self.since = utc_now()
         self.results = 0
@@ -95,30 +100,107 @@ class Monitor:
 
     def _build(self) -> None:
         cfg = self.config
-        fs = self.source.sample_rate
-        spec = cfg.spectrum
-        channels = len(cfg.source.channels)
-        self.fs = fs
+        self.fs = self.source.sample_rate
         self.scale = np.asarray(cfg.source.scale, dtype=float)
-        self.ring = Ring(channels, spec.span)
-        self.stage = SpectralStage(fs, spec.size, spec.window, spec.averages, channels)
-        self.envelope: Optional[EnvelopeStage] = None
-        if cfg.envelope is not None:
-            self.envelope = EnvelopeStage(fs, spec.size, spec.window, spec.averages, channels,
-                                          cfg.envelope.band_hz)
-        lines = spec.size // 2 + 1
-        self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines)
-        self.speed = SpeedTracker(cfg.speed)
-        self.band_rules = [
-            LevelMachine([("alert", b.alert), ("danger", b.danger)], b.hysteresis, b.delay)
-            for b, _ in self.bank.pairs
-        ]
-        self.health = Health(cfg.health, cfg.source.channels, fs)
-        self._pending = spec.size  # samples until the next frame
+        self._build_stages()
+        self._build_rules(None)
         self._samples = 0  # stream position, lost samples included
         self._next_summary = 0.0
         self._last_sample_at = self.clock()
         self._stream_s = 0.0
+
+    def _build_stages(self) -> None:
+        """Ring and spectral stages: sized from [spectrum], allocated once."""
+        cfg = self.config
+        spec = cfg.spectrum
+        channels = len(cfg.source.channels)
+        self.ring = Ring(channels, spec.span)
+        self.stage = SpectralStage(self.fs, spec.size, spec.window, spec.averages, channels)
+        self.envelope: Optional[EnvelopeStage] = None
+        if cfg.envelope is not None:
+            self.envelope = EnvelopeStage(self.fs, spec.size, spec.window, spec.averages, channels,
+                                          cfg.envelope.band_hz)
+        self._pending = spec.size  # samples until the next frame
+
+    def _build_rules(self, previous: Optional[Dict[Tuple[str, Optional[str]], str]]) -> None:
+        """Bands, speed, level machines and health checks. `previous` maps
+        (name, channel) to the level held before a reload: a band or check
+        that still exists keeps it (or the highest level it still has)."""
+        cfg = self.config
+        lines = cfg.spectrum.size // 2 + 1
+        self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines)
+        old_speed = getattr(self, "speed", None)
+        self.speed = SpeedTracker(cfg.speed)
+        if old_speed is not None and old_speed.locked and cfg.speed.track:
+            self.speed.speed_hz = old_speed.speed_hz
+        self.band_rules = [
+            LevelMachine([("alert", b.alert), ("danger", b.danger)], b.hysteresis, b.delay)
+            for b, _ in self.bank.pairs
+        ]
+        self.health = Health(cfg.health, cfg.source.channels, self.fs)
+        if previous:
+            keyed = [((b.name, self.config.source.channels[ch]), rule)
+                     for (b, ch), rule in zip(self.bank.pairs, self.band_rules)]
+            keyed += [((c.name, c.channel), c.rule) for c in self.health.checks]
+            for key, rule in keyed:
+                if key in previous:
+                    rule.hold(previous[key])
+
+    def levels(self) -> Dict[Tuple[str, Optional[str]], str]:
+        """Current level of every band (per channel) and health check."""
+        out = {(b.name, self.config.source.channels[ch]): rule.level
+               for (b, ch), rule in zip(self.bank.pairs, self.band_rules)}
+        out.update({(c.name, c.channel): c.rule.level for c in self.health.checks})
+        return out
+
+    def request_reload(self, loader: Callable[[], Config]) -> None:
+        """Ask for a reload with `loader` (it reads and checks the file);
+        safe from a signal handler: the measuring loop does the work."""
+        self._loader = loader
+        self._reload_requested.set()
+
+    def _reload(self) -> None:
+        self._reload_requested.clear()
+        assert self._loader is not None
+        try:
+            config = self._loader()
+        except ConfigError as exc:
+            log.error("reload refused, still running on the last good config: %s", exc)
+            self._emit_health(self.health.on_config(True, self._stream_s))
+            return
+        refused = self.reload(config)
+        for part in refused:
+            log.warning("reload: %s changed; that needs a restart and was not applied", part)
+        log.info("reloaded %s (%s)", config.path, "ring kept" if self.ring_kept else "ring restarted: [spectrum] changed")
+        self._emit_health(self.health.on_config(False, self._stream_s))
+        if self.latest is not None:
+            self.sink.send("levels", self._levels_payload(self.latest))
+
+    def reload(self, config: Config) -> List[str]:
+        """Take a new config at the next result. Returns what could not be
+        taken without a restart (each a sentence); those parts keep their old
+        values. The ring is kept unless [spectrum] changed; levels are kept
+        for bands and checks that still exist."""
+        old = self.config
+        refused = []
+        if config.node != old.node:
+            refused.append(f"node name {config.node!r} (still {old.node!r})")
+        if config.source != old.source:
+            refused.append("[source] settings")
+        if config.mqtt != old.mqtt:
+            refused.append("[mqtt] settings")
+        keep = {"node": old.node, "source": old.source, "mqtt": old.mqtt,
+                "summary_interval": old.summary_interval, "prefix": old.prefix}
+        new = dataclasses.replace(config, **keep)
+        levels = self.levels()
+        self.config = new
+        if (new.spectrum, new.envelope) != (old.spectrum, old.envelope):
+            self._build_stages()
+            self.ring_kept = False
+        else:
+            self.ring_kept = True
+        self._build_rules(levels)
+        return refused
 
     # ------------------------------------------------------------------ run
 
@@ -136,6 +218,8 @@ class Monitor:
                 # The loop turns at least every READ_TIMEOUT_S; a hung source
                 # or stage stops the pings and systemd's watchdog steps in.
                 self.notifier.watchdog()
+                if self._reload_requested.is_set():
+                    self._reload()
                 block = self.source.read(READ_TIMEOUT_S)
                 if block is None:
                     if self.source.ended:

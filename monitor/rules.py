@@ -38,6 +38,14 @@ class LevelMachine:
         self._below: List[Optional[float]] = [None] * len(self.limits)
         self._floor = min((v for _, v in self.limits), default=math.inf)
 
+    def hold(self, level: str) -> None:
+        """Start at `level` (after a reload), or at the highest level below
+        it that this machine still has; timers start afresh."""
+        names = ["normal"] + [n for n, _ in self.limits]
+        order = list(BAND_LEVELS) if level in BAND_LEVELS else list(HEALTH_LEVELS)
+        rank = order.index(level) if level in order else 0
+        self.index = max((i for i, n in enumerate(names) if n in order and order.index(n) <= rank), default=0)
+
     @property
     def level(self) -> str:
         return "normal" if self.index == 0 else self.limits[self.index - 1][0]
