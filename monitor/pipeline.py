@@ -19,6 +19,7 @@ import numpy as np
 
 from . import __version__
 from .bands import BandBank, BandValue
+from .capture import Capture
 from .config import Config
 from .errors import ConfigError
 from .delivery.base import Sink
@@ -112,6 +113,11 @@ class Monitor:
     def _build_stages(self) -> None:
         """Ring and spectral stages: sized from [spectrum], allocated once."""
         cfg = self.config
+        if getattr(self, "capture", None) is None and cfg.capture is not None:
+            self.capture: Optional[Capture] = Capture(cfg.capture, cfg.node, cfg.source.channels,
+                                                      cfg.source.unit, self.fs)
+        elif not hasattr(self, "capture"):
+            self.capture = None
         spec = cfg.spectrum
         channels = len(cfg.source.channels)
         self.ring = Ring(channels, spec.span)
@@ -231,6 +237,8 @@ class Monitor:
                 self.feed(block)
         finally:
             self.notifier.stopping()
+            if self.capture is not None:
+                self.capture.flush()
             self.sink.close(self.status("offline"))
 
     def status_line(self, result: Result) -> str:
@@ -260,6 +268,8 @@ class Monitor:
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
         ))
         samples = block.samples * self.scale
+        if self.capture is not None:
+            self.capture.feed(samples, self._samples + n)
         start = 0
         total = samples.shape[0]
         while start < total:
@@ -326,6 +336,9 @@ class Monitor:
                 speed_hz=num(result.speed_hz),
                 dominant_hz=num(result.dominant_hz[ch]),
             )
+            if self.capture is not None and BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0]):
+                # Raw samples around the rise, named now, written `after` s later.
+                event["capture"] = self.capture.trigger(self._samples, event)
             self.sink.send("event", event)
             log.info("%s/%s %s -> %s at %.3g %s", value.name, value.channel, change[0], change[1],
                      value.value, value.unit)
