@@ -39,6 +39,9 @@ from .stats import time_stats
 log = logging.getLogger("bandwatch.pipeline")
 
 READ_TIMEOUT_S = 0.2
+# A helper thread (the source's reader, the sink's publisher) silent this
+# long is stuck: the watchdog pings stop, and systemd restarts the service.
+STALL_S = 10.0
 
 
 @dataclass
@@ -83,6 +86,7 @@ class Monitor:
         ids: Optional[EventIds] = None,
         clock: Callable[[], float] = time.monotonic,
         notifier: Optional[Notifier] = None,
+        stall_s: float = STALL_S,
     ) -> None:
         self.config = config
         self.source = source
@@ -90,6 +94,8 @@ class Monitor:
         self.ids = ids or EventIds()
         self.clock = clock
         self.notifier = notifier or Notifier(environ={})
+        self.stall_s = stall_s
+        self._stalled: Optional[str] = None
         self._reload_requested = threading.Event()
         self._loader: Optional[Callable[[], Config]] = None
         self.ring_kept = True
@@ -221,9 +227,10 @@ class Monitor:
         self.sink.open(self.status("online"), self.status("offline"))
         try:
             while not stop.is_set():
-                # The loop turns at least every READ_TIMEOUT_S; a hung source
-                # or stage stops the pings and systemd's watchdog steps in.
-                self.notifier.watchdog()
+                # The loop turns at least every READ_TIMEOUT_S; a hung stage,
+                # reader or publisher stops the pings and systemd steps in.
+                if self._making_progress():
+                    self.notifier.watchdog()
                 if self._reload_requested.is_set():
                     self._reload()
                 block = self.source.read(READ_TIMEOUT_S)
@@ -240,6 +247,22 @@ class Monitor:
             if self.capture is not None:
                 self.capture.flush()
             self.sink.close(self.status("offline"))
+
+    def _making_progress(self) -> bool:
+        """True while the source's and the sink's threads show signs of life."""
+        now = time.monotonic()
+        parts = [("the source's reader", self.source.heartbeat())]
+        beat = getattr(self.sink, "heartbeat", None)
+        if callable(beat):
+            parts.append(("the publisher", beat()))
+        stuck = next((name for name, at in parts if now - at > self.stall_s), None)
+        if stuck != self._stalled:
+            if stuck:
+                log.error("%s has stalled for over %g s; stopping the watchdog pings", stuck, self.stall_s)
+            else:
+                log.info("%s is moving again; watchdog pings resume", self._stalled)
+            self._stalled = stuck
+        return stuck is None
 
     def status_line(self, result: Result) -> str:
         """One line for systemctl status: speed and the highest band level."""

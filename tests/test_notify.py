@@ -100,3 +100,72 @@ def test_run_reports_ready_watchdog_status_and_stopping(tmp_path):
     assert "WATCHDOG=1" in got
     assert "STOPPING=1" in got
     assert any("STATUS=demo-fan:" in m for m in got)
+
+
+class StuckSource:
+    """Builds a stream source whose reader thread goes round its loop for a
+    while, then blocks for good, as a driver read that never returns would."""
+
+    @staticmethod
+    def make(config, run_s):
+        import threading as _threading
+
+        from monitor.sources.stream import StreamSource
+
+        class _Stuck(StreamSource):
+            kind = "stuck"
+            release = _threading.Event()
+
+            def _loop(self):
+                end = time.monotonic() + run_s
+                while time.monotonic() < end and not self._stop.is_set():
+                    self._tick()
+                    time.sleep(0.02)
+                self.release.wait()  # stuck until the test lets go
+
+            def _wake(self):
+                self.release.set()
+
+        return _Stuck(config)
+
+
+def test_watchdog_pings_stop_when_the_reader_thread_is_stuck(tmp_path):
+    import threading as _threading
+
+    from monitor.config import parse
+    from monitor.pipeline import Monitor
+    from test_pipeline import ListSink
+
+    config = parse("""
+[node]
+name = "stuck"
+[source]
+kind = "tcp-server"
+port = 5999
+sample_rate = 1000.0
+channels = ["x"]
+""")
+    sock = listen(tmp_path / "notify")
+    notifier = Notifier({"NOTIFY_SOCKET": str(tmp_path / "notify"), "WATCHDOG_USEC": "100000"})
+    source = StuckSource.make(config.source, run_s=1.0)
+    source.open()
+    monitor = Monitor(config, source, ListSink(), notifier=notifier, stall_s=0.5)
+    stop = _threading.Event()
+    runner = _threading.Thread(target=monitor.run, args=(stop,))
+    started = time.monotonic()
+    runner.start()
+    pings = []
+    while time.monotonic() - started < 3.0:
+        try:
+            if sock.recv(4096) == b"WATCHDOG=1":
+                pings.append(time.monotonic() - started)
+        except socket.timeout:
+            pass
+    stop.set()
+    runner.join(5)
+    source.close()
+    # Pings while the thread went round (1 s), none once it had been silent
+    # for the stall limit (0.5 s) - allow one read timeout of the loop.
+    assert pings and pings[0] < 0.5
+    assert max(pings) < 1.0 + 0.5 + 0.3
+    assert not [p for p in pings if p > 2.0]

@@ -81,3 +81,28 @@ def test_events_wait_on_disk_while_the_broker_is_away(tmp_path):
             assert sorted(set(ids)) == list(range(1, max(ids) + 1))
     finally:
         broker.stop()
+
+
+def test_sigterm_flushes_publishes_offline_and_exits_within_5_s(tmp_path):
+    import signal
+    import time
+
+    with Broker(str(tmp_path / "broker")) as broker, Collector(broker, "plant/demo-fan/#") as sub:
+        path = config(tmp_path, broker.port, seconds=0.0)  # endless
+        text = open(path).read().replace("realtime = false", "realtime = true")
+        open(path, "w").write(text)
+        proc = subprocess.Popen([sys.executable, "-m", "monitor", "run", "-c", path], cwd=ROOT,
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        try:
+            wait_for(lambda: sub.on("plant/demo-fan/summary") or None, 20)
+            started = time.monotonic()
+            proc.send_signal(signal.SIGTERM)
+            proc.wait(timeout=10)
+            took = time.monotonic() - started
+        finally:
+            if proc.poll() is None:
+                proc.kill()
+        assert proc.returncode == 0
+        assert took < 5.0
+        states = [json.loads(m.payload)["state"] for m in sub.on("plant/demo-fan/status")]
+        assert states[-1] == "offline"

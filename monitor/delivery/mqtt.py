@@ -13,6 +13,9 @@ Topics and their QoS/retain flags are the table in `base.TOPICS`:
   memory and published again on every reconnect.
 * ``summary``: QoS 0, dropped while disconnected.
 
+TLS (`tls_context`) verifies the broker's chain and host name and, with
+``cert_file``, presents a client certificate to brokers that require one.
+
 Threads: paho's network thread runs the callbacks; they only note what
 happened and wake the delivery thread, which does all event publishing and
 queue bookkeeping. Callbacks run while paho holds its own locks, so they must
@@ -74,6 +77,67 @@ def read_password(path: str) -> str:
     if text.endswith("\n"):
         return text[:-1]
     return text
+
+
+class _EncryptedKey(Exception):
+    """Raised from the key password callback: there is nobody to ask."""
+
+
+def _no_password() -> bytes:
+    raise _EncryptedKey()
+
+
+def _check_readable(key: str, path: str) -> None:
+    try:
+        with open(path, "rb") as f:
+            f.read(1)
+    except OSError as err:
+        raise DeliveryError(f"mqtt.{key} {path!r} cannot be read: {err.strerror or err}") from err
+
+
+def tls_context(cfg: MqttConfig) -> ssl.SSLContext:
+    """The TLS context for the broker connection.
+
+    It verifies the broker's chain (against `ca_file`, or the system store)
+    and its host name, and presents `cert_file`/`key_file` when set, for
+    brokers that require a client certificate. Every file is read here, at
+    start, so a bad path or a wrong file is a clear error now rather than an
+    endless round of failed handshakes later.
+    """
+    # PROTOCOL_TLS_CLIENT: CERT_REQUIRED and check_hostname, as paho's own
+    # tls_set would set them, without paho 1.6 picking a deprecated protocol.
+    context = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
+    if cfg.ca_file:
+        _check_readable("ca_file", cfg.ca_file)
+        try:
+            context.load_verify_locations(cafile=cfg.ca_file)
+        except (ssl.SSLError, ValueError) as err:
+            raise DeliveryError(f"mqtt.ca_file {cfg.ca_file!r} holds no PEM CA certificate: {err}") from err
+    else:
+        try:
+            context.load_default_certs()
+        except (OSError, ValueError) as err:  # pragma: no cover - a broken system store
+            raise DeliveryError(f"TLS cannot load the system CA store: {err}") from err
+    if cfg.cert_file:
+        _check_readable("cert_file", cfg.cert_file)
+        if cfg.key_file:
+            _check_readable("key_file", cfg.key_file)
+        key_path = cfg.key_file or cfg.cert_file
+        try:
+            # A password callback that refuses: OpenSSL would otherwise
+            # prompt on the terminal, and a service has none.
+            context.load_cert_chain(cfg.cert_file, cfg.key_file or None, password=_no_password)
+        except _EncryptedKey:
+            raise DeliveryError(
+                f"mqtt.key_file {key_path!r} holds an encrypted private key; bandwatch needs it "
+                "unencrypted (protect it with file permissions instead)"
+            ) from None
+        except (ssl.SSLError, ValueError) as err:
+            where = f"mqtt.cert_file {cfg.cert_file!r}"
+            if cfg.key_file:
+                where += f" with mqtt.key_file {cfg.key_file!r}"
+            raise DeliveryError(f"{where}: not a PEM certificate and its matching private key: {err}") from err
+    return context
 
 
 def _rc_value(rc: Any) -> int:
@@ -156,6 +220,10 @@ class MqttSink(Sink):
         self._opened = False
         self._closed = False
         self._failing = False  # log repeated connect failures quietly
+        # Network thread only: whether this connection got its CONNACK, and
+        # paho's last error line (the TLS or socket error behind a drop).
+        self._session = False
+        self._paho_error = ""
         self.published = 0
         self.summaries_dropped = 0
         self._thread: Optional[threading.Thread] = None
@@ -183,13 +251,7 @@ class MqttSink(Sink):
         if cfg.username:
             client.username_pw_set(cfg.username, password)
         if cfg.tls:
-            try:
-                # TLS_CLIENT verifies the broker's chain and host name; paho
-                # 1.6 would otherwise pick the deprecated generic protocol.
-                client.tls_set(ca_certs=cfg.ca_file or None, tls_version=ssl.PROTOCOL_TLS_CLIENT)
-            except (OSError, ValueError) as err:
-                what = f"mqtt.ca_file {cfg.ca_file!r}" if cfg.ca_file else "the system CA store"
-                raise DeliveryError(f"TLS cannot be set up from {what}: {err}") from err
+            client.tls_set_context(tls_context(cfg))
         client.reconnect_delay_set(min_delay=reconnect_min, max_delay=reconnect_max)
         client.max_inflight_messages_set(self.window + 4)
         client.on_connect = self._on_connect
@@ -197,6 +259,7 @@ class MqttSink(Sink):
         client.on_publish = self._on_publish
         if hasattr(client, "on_connect_fail"):
             client.on_connect_fail = self._on_connect_fail
+        client.on_log = self._on_log
         return client
 
     def _topic(self, suffix: str) -> str:
@@ -325,6 +388,8 @@ class MqttSink(Sink):
             self._failing = True
             return
         self._failing = False
+        self._session = True
+        self._paho_error = ""
         log.info("MQTT: connected to %s:%d", self.cfg.host, self.cfg.port)
         self._note("connect")
 
@@ -336,11 +401,26 @@ class MqttSink(Sink):
         else:
             reason = mqtt.error_string(args[0]) if args else "unknown"
         self._note("disconnect")
+        accepted, self._session = self._session, False
+        cause, self._paho_error = self._paho_error or reason, ""
         if self._closed:
             log.info("MQTT: disconnected")
+        elif not accepted:
+            # Dropped before CONNACK: a failed attempt, not a lost session.
+            # TLS 1.3 lands here when the broker rejects our certificate
+            # (or the lack of one) after the handshake.
+            level = logging.DEBUG if self._failing else logging.WARNING
+            log.log(level, "MQTT: broker %s:%d closed the connection before accepting it (%s); retrying",
+                    self.cfg.host, self.cfg.port, cause)
+            self._failing = True
         else:
             log.warning("MQTT: connection to %s:%d lost (%s); retrying",
-                        self.cfg.host, self.cfg.port, reason)
+                        self.cfg.host, self.cfg.port, cause)
+
+    @_guarded
+    def _on_log(self, client: Any, userdata: Any, level: int, buf: str) -> None:
+        if level == mqtt.MQTT_LOG_ERR:
+            self._paho_error = buf
 
     @_guarded
     def _on_publish(self, client: Any, userdata: Any, mid: int, *args: Any) -> None:

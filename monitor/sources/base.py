@@ -49,6 +49,12 @@ class Source:
     def open(self) -> None:
         self._open()
 
+    def heartbeat(self) -> float:
+        """Monotonic time of the source's last sign of life. Sources read in
+        the caller's thread are alive whenever asked; a source with a
+        reader thread reports when that thread last went round its loop."""
+        return time.monotonic()
+
     def close(self) -> None:
         self._close()
 

@@ -85,6 +85,7 @@ class StreamSource(Source):
         self._ready = threading.Condition()
         self._stop = threading.Event()
         self._thread: Optional[threading.Thread] = None
+        self._beat = time.monotonic()
         self._failure: Optional[BaseException] = None
         # Break bookkeeping, touched by the reader thread only.
         self._break = False
@@ -104,6 +105,16 @@ class StreamSource(Source):
         """Samples per channel waiting in the queue now."""
         with self._ready:
             return self._queued
+
+    def heartbeat(self) -> float:
+        """When the reader thread last went round its loop (-inf once it died)."""
+        thread = self._thread
+        if thread is None or not thread.is_alive():
+            return -float("inf")
+        return self._beat
+
+    def _tick(self) -> None:
+        self._beat = time.monotonic()
 
     def counters(self) -> Dict[str, int]:
         out = dict(self._link)
@@ -260,7 +271,9 @@ class StreamSource(Source):
 
     def _backoff(self, delay: float) -> float:
         """Wait `delay` (or until stopped) and return the next delay."""
+        self._tick()
         self._stop.wait(delay)
+        self._tick()
         return min(delay * 2.0, BACKOFF_MAX_S)
 
 
@@ -275,6 +288,7 @@ class LinkSource(StreamSource):
     def _loop(self) -> None:
         delay = BACKOFF_START_S
         while not self._stop.is_set():
+            self._tick()
             self._tries += 1
             try:
                 handle = self._connect()
@@ -289,6 +303,7 @@ class LinkSource(StreamSource):
             reason = ""
             try:
                 while not self._stop.is_set():
+                    self._tick()
                     data = self._receive(handle)
                     if data:
                         received += len(data)

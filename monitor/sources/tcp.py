@@ -164,6 +164,7 @@ class TcpServerSource(StreamSource):
             selector.register(self._listener, selectors.EVENT_READ)
             try:
                 while not self._stop.is_set():
+                    self._tick()
                     for key, _ in selector.select(POLL_S):
                         if key.fileobj is self._listener:
                             conn = self._accept(selector, conn)

@@ -73,6 +73,7 @@ class UdpSource(StreamSource):
         sock = self._sock
         assert sock is not None
         while not self._stop.is_set():
+            self._tick()
             try:
                 data, _ = sock.recvfrom(DATAGRAM_MAX)
             except socket.timeout:
