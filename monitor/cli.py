@@ -24,7 +24,6 @@ log = logging.getLogger("bandwatch")
 _NOT_YET = {
     "replay": "replaying a recording",
     "record": "recording a source",
-    "view": "the live terminal view",
 }
 
 
@@ -51,6 +50,9 @@ def _parser() -> argparse.ArgumentParser:
     record.add_argument("-o", "--output", required=True, metavar="REC")
     record.add_argument("--seconds", required=True, type=float, metavar="S")
     with_config("view", "live terminal view of band levels against limits")
+    reset = with_config("reset-baseline", "forget learned baselines, so the service learns them afresh "
+                        "(then: systemctl reload bandwatch)")
+    reset.add_argument("bands", nargs="*", metavar="BAND", help="band names (default: every band with a baseline)")
     b = with_config("bench", "measure how many times faster than real time the pipeline runs")
     b.add_argument("--seconds", type=float, default=120.0, metavar="S",
                    help="seconds of simulated signal to run through (default: 120)")
@@ -81,6 +83,12 @@ def main(argv: Optional[List[str]] = None) -> int:
 
         bench(config, sys.stdout, seconds=args.seconds)
         return EXIT_OK
+    if args.command == "view":
+        from .view import view
+
+        return view(config, sys.stdout)
+    if args.command == "reset-baseline":
+        return _reset_baseline(config, args.bands)
     if args.command in _NOT_YET:
         print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
               file=sys.stderr)
@@ -121,7 +129,8 @@ def _run(config: Config) -> int:
     try:
         ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
         sink = open_sink(config)
-        monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier())
+        state_dir = config.mqtt.queue_dir if config.mqtt else None
+        monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier(), state_dir=state_dir)
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
                  len(config.source.channels), source.sample_rate)
         monitor.run(stop)
@@ -130,6 +139,27 @@ def _run(config: Config) -> int:
         return EXIT_FAILURE
     finally:
         source.close()
+    return EXIT_OK
+
+
+def _reset_baseline(config: Config, names: List[str]) -> int:
+    from .baseline import BaselineStore, key
+
+    learning = [b for b in config.bands if b.baseline is not None]
+    unknown = [n for n in names if n not in {b.name for b in learning}]
+    if unknown:
+        print(f"bandwatch: reset-baseline: no band with a baseline named {', '.join(unknown)}; "
+              f"bands with one: {', '.join(b.name for b in learning) or 'none'}", file=sys.stderr)
+        return EXIT_USAGE
+    if config.mqtt is None:
+        print("bandwatch: reset-baseline: without [mqtt] baselines are not stored (each run learns afresh)",
+              file=sys.stderr)
+        return EXIT_OK
+    store = BaselineStore(config.mqtt.queue_dir)
+    chosen = [b for b in learning if not names or b.name in names]
+    removed = store.remove([key(b.name, ch) for b in chosen for ch in b.channels])
+    print(f"forgot {removed} learned baseline(s) in {store.path}; "
+          "`systemctl reload bandwatch` makes the service learn them afresh")
     return EXIT_OK
 
 

@@ -129,6 +129,11 @@ class BandConfig:
     bearing: Optional[str] = None
     defect: Optional[str] = None
     harmonic: int = 1
+    # Limits relative to a learned typical value: `baseline` seconds of
+    # learning, then alert/danger at these multiples of it.
+    baseline: Optional[float] = None
+    alert_ratio: Optional[float] = None
+    danger_ratio: Optional[float] = None
 
     def edges_hz(self, speed_hz: Optional[float]) -> Tuple[float, float]:
         """Band edges in Hz, following the running speed for order bands."""
@@ -646,6 +651,20 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     danger = t.get_optional_float("danger")
     if alert is not None and danger is not None and not alert < danger:
         raise t.bad("danger", danger, f"a limit above alert ({alert:g})")
+    baseline = t.get_optional_float("baseline")
+    if baseline is not None and baseline > 7 * 86400:
+        raise t.bad("baseline", baseline, "seconds of learning, > 0 and at most 604800 (a week)")
+    alert_ratio = t.get_optional_float("alert_ratio")
+    danger_ratio = t.get_optional_float("danger_ratio")
+    for level, ratio, absolute in (("alert", alert_ratio, alert), ("danger", danger_ratio, danger)):
+        if ratio is not None and absolute is not None:
+            raise t.fail(f"{level}_ratio", f"give {level} or {level}_ratio, not both")
+        if ratio is not None and baseline is None:
+            raise t.fail(f"{level}_ratio", "needs baseline = SECONDS to learn the value it multiplies")
+    if baseline is not None and alert_ratio is None and danger_ratio is None:
+        raise t.fail("baseline", "needs alert_ratio or danger_ratio, the multiples that raise levels")
+    if alert_ratio is not None and danger_ratio is not None and not alert_ratio < danger_ratio:
+        raise t.bad("danger_ratio", danger_ratio, f"a ratio above alert_ratio ({alert_ratio:g})")
     band = BandConfig(
         name=name,
         channels=channels,
@@ -660,6 +679,9 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
         bearing=bearing,
         defect=defect,
         harmonic=harmonic,
+        baseline=baseline,
+        alert_ratio=alert_ratio,
+        danger_ratio=danger_ratio,
     )
     t.finish()
     return band

@@ -19,6 +19,7 @@ import numpy as np
 
 from . import __version__
 from .bands import BandBank, BandValue
+from .baseline import Baseline, BaselineStore
 from .capture import Capture
 from .config import Config
 from .errors import ConfigError
@@ -87,6 +88,7 @@ class Monitor:
         clock: Callable[[], float] = time.monotonic,
         notifier: Optional[Notifier] = None,
         stall_s: float = STALL_S,
+        state_dir: Optional[str] = None,
     ) -> None:
         self.config = config
         self.source = source
@@ -95,6 +97,7 @@ class Monitor:
         self.clock = clock
         self.notifier = notifier or Notifier(environ={})
         self.stall_s = stall_s
+        self.baseline_store = BaselineStore(state_dir)
         self._stalled: Optional[str] = None
         self._reload_requested = threading.Event()
         self._loader: Optional[Callable[[], Config]] = None
@@ -145,9 +148,11 @@ class Monitor:
         self.speed = SpeedTracker(cfg.speed)
         if old_speed is not None and old_speed.locked and cfg.speed.track:
             self.speed.speed_hz = old_speed.speed_hz
+        self.baseline_store.reload()  # a reset-baseline takes effect here
+        self.baselines = [Baseline(b, cfg.source.channels[ch], self.baseline_store) for b, ch in self.bank.pairs]
         self.band_rules = [
-            LevelMachine([("alert", b.alert), ("danger", b.danger)], b.hysteresis, b.delay)
-            for b, _ in self.bank.pairs
+            LevelMachine(list(zip(("alert", "danger"), base.limits())), b.hysteresis, b.delay)
+            for (b, _), base in zip(self.bank.pairs, self.baselines)
         ]
         self.health = Health(cfg.health, cfg.source.channels, self.fs)
         if previous:
@@ -343,17 +348,20 @@ class Monitor:
 
     def _apply_rules(self, result: Result) -> bool:
         changed = False
-        for (band, _), rule, value in zip(self.bank.pairs, self.band_rules, result.bands):
+        for (band, _), rule, base, value in zip(self.bank.pairs, self.band_rules, self.baselines, result.bands):
+            if base.update(value.value, result.stream_s):
+                rule.set_limits(list(zip(("alert", "danger"), base.limits())))
             change = rule.update(value.value, result.stream_s)
             if change is None:
                 continue
             changed = True
             ch = self.config.source.channels.index(value.channel)
             event = self._event_base("band", value.name, value.channel, change, result.stream_s)
+            alert, danger = base.limits()
             event.update(
                 value=num(value.value),
-                alert=num(band.alert),
-                danger=num(band.danger),
+                alert=num(alert),
+                danger=num(danger),
                 unit=value.unit,
                 quantity=value.quantity,
                 speed_hz=num(result.speed_hz),

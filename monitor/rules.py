@@ -30,13 +30,22 @@ class LevelMachine:
         hysteresis: float,
         delay: float,
     ) -> None:
-        self.limits: List[Tuple[str, float]] = [(n, float(v)) for n, v in limits if v is not None]
         self.hysteresis = hysteresis
         self.delay = delay
         self.index = 0  # 0 = normal, i = self.limits[i - 1]
+        self.set_limits(limits)
+
+    def set_limits(self, limits: Sequence[Tuple[str, Optional[float]]]) -> None:
+        """New limits (a learned baseline, a reload); the level is kept as
+        far as it still exists, and timers start afresh."""
+        level = self.level if hasattr(self, "limits") else "normal"
+        self.limits: List[Tuple[str, float]] = [(n, float(v)) for n, v in limits if v is not None]
         self._above: List[Optional[float]] = [None] * len(self.limits)
         self._below: List[Optional[float]] = [None] * len(self.limits)
         self._floor = min((v for _, v in self.limits), default=math.inf)
+        self.index = 0
+        if level != "normal":
+            self.hold(level)
 
     def hold(self, level: str) -> None:
         """Start at `level` (after a reload), or at the highest level below
