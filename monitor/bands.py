@@ -95,6 +95,13 @@ class BandBank:
         self._fixed: Dict[int, Tuple[int, np.ndarray]] = {
             i: self._weights(band, None) for i, (band, _) in enumerate(self.pairs) if band.hz is not None
         }
+        self._groups: List[Tuple[BandConfig, List[int], List[int]]] = []
+        for i, (band, ch) in enumerate(self.pairs):
+            if not self._groups or self._groups[-1][0] is not band:
+                self._groups.append((band, [], []))
+            self._groups[-1][1].append(i)
+            self._groups[-1][2].append(ch)
+        self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
         top = min(SEVERITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines) * line_weights(
             SEVERITY_HZ[0], top, bin_hz, lines
@@ -120,25 +127,23 @@ class BandBank:
         Spectrum serves as "raw"."""
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
-        out = []
-        moving: Dict[int, Tuple[int, np.ndarray]] = {}  # weights per band, shared by its channels
-        for i, (band, ch) in enumerate(self.pairs):
-            weights = self._fixed.get(i)
-            if weights is None:
-                weights = moving.get(id(band))
-                if weights is None:
-                    weights = moving[id(band)] = self._weights(band, speed_hz)
-            first, w = weights
-            psd = spectra[band.spectrum].psd[ch, first : first + len(w)]
-            out.append(BandValue(
+        values = np.empty(len(self.pairs))
+        for band, pairs, rows in self._groups:
+            # One band's weights serve all its channels: one product per band.
+            first, w = self._fixed.get(pairs[0]) or self._weights(band, speed_hz)
+            psd = spectra[band.spectrum].psd[rows, first : first + len(w)]
+            values[pairs] = np.sqrt(psd @ w * self.bin_hz)
+        return [
+            BandValue(
                 name=band.name,
                 channel=self.channels[ch],
                 quantity=band.quantity,
-                unit=quantity_unit(band.quantity, self.unit),
-                value=float(np.sqrt(np.dot(psd, w) * self.bin_hz)),
+                unit=self._units[i],
+                value=float(values[i]),
                 edges_hz=band.edges_hz(speed_hz),
-            ))
-        return out
+            )
+            for i, (band, ch) in enumerate(self.pairs)
+        ]
 
     def velocity_rms(self, spectrum: Spectrum) -> np.ndarray:
         """Broadband RMS velocity over 10-1000 Hz (capped at Nyquist), mm/s,

@@ -34,7 +34,7 @@ from .sources.simulator import SimulatorSource
 from .windows import Window
 
 DEFAULT_RATE = 25600.0  # for a file source, whose rate the recording gives
-FRAME_SAMPLES = 256  # samples per channel per wire frame
+FRAME_SAMPLES = 1024  # samples per channel per wire frame (40 ms at 25.6 kHz)
 CHUNK_BYTES = 65536  # bytes handed to the decoder at a time, as a reader thread would
 
 

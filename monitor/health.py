@@ -89,7 +89,7 @@ class Health:
         self._flat_since: List[Optional[float]] = [None] * len(self.channels)
         self._last_row: Optional[np.ndarray] = None
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
-        self._line_mask: Optional[np.ndarray] = None
+        self._top_line: Optional[int] = None
         # Totals for what sources do not count themselves.
         self._own: Dict[str, int] = {"samples": 0, "breaks": 0}
         self._own.update({f"clipped{i}": 0 for i in range(len(self.channels))})
@@ -132,12 +132,12 @@ class Health:
 
     def on_spectrum(self, spectrum: Spectrum, t: float) -> List[Change]:
         out: List[Change] = []
-        if self._line_mask is None:
-            f = spectrum.freqs
-            nyquist = f[-1]
-            self._line_mask = f >= (1.0 - ALIAS_TOP_SHARE) * nyquist
-        total = spectrum.psd[:, 1:].sum(axis=1)
-        top = spectrum.psd[:, self._line_mask].sum(axis=1)
+        if self._top_line is None:
+            lines = spectrum.psd.shape[1]
+            # First line of the top 10 % of the band below Nyquist.
+            self._top_line = int(np.ceil((1.0 - ALIAS_TOP_SHARE) * (lines - 1)))
+        top = spectrum.psd[:, self._top_line :].sum(axis=1)
+        total = spectrum.psd[:, 1 : self._top_line].sum(axis=1) + top
         for i, check in enumerate(self.alias):
             share = float(top[i] / total[i]) if total[i] > 0 else None
             self._update(check, share, t, out)

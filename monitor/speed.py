@@ -4,7 +4,7 @@ Tracking looks only inside [speed] search_hz, which the user sets around 1x,
 so the estimate cannot jump to a harmonic. A peak counts only when it stands
 clear of the range's floor (its line at least 4 times the median power of the
 range, 6 dB) and is not on the range's edge line; otherwise the last good
-speed is kept. The frequency is read between lines with the estimator in
+speed is kept. The frequency is read between lines with the estimator of
 monitor.peaks.
 """
 
@@ -14,7 +14,6 @@ from typing import Optional
 import numpy as np
 
 from .config import SpeedConfig
-from .peaks import interpolate_peak
 from .spectrum import Spectrum
 
 _CLEAR_OF_FLOOR = 4.0
@@ -40,9 +39,13 @@ class SpeedTracker:
         part = spectrum.psd[:, lo - 1 : hi + 2].sum(axis=0)
         inner = part[1:-1]
         j = int(np.argmax(inner))
-        if j in (0, len(inner) - 1) or inner[j] < _CLEAR_OF_FLOOR * float(np.median(inner)):
+        floor = float(np.partition(inner, len(inner) // 2)[len(inner) // 2])  # the median line
+        if j in (0, len(inner) - 1) or inner[j] < _CLEAR_OF_FLOOR * floor:
             return self.speed_hz
-        freq, _ = interpolate_peak(np.sqrt(part)[None, :], spectrum.window, spectrum.bin_hz, j + 1, j + 1)
-        self.speed_hz = float(freq[0]) + (lo - 1) * spectrum.bin_hz
+        # The two-line ratio (monitor.peaks) on magnitudes, for the one peak.
+        left, peak, right = np.sqrt(part[j : j + 3])
+        side = 1.0 if right >= left else -1.0
+        offset = float(spectrum.window.offset_from_ratio(max(left, right) / peak)) if peak > 0 else 0.0
+        self.speed_hz = (lo + j + side * offset) * spectrum.bin_hz
         self.locked = True
         return self.speed_hz

@@ -130,7 +130,7 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("alias", "x"), ("alias", "y"), ("queue", None),
+        ("alias", "x"), ("alias", "y"), ("queue", None), ("config", None),
     }
 
 
