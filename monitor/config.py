@@ -29,6 +29,15 @@ WINDOWS = ("hann", "hamming", "blackman-harris", "flattop", "rectangular")
 QUANTITIES = ("acceleration", "velocity", "displacement")
 QUANTITY_UNITS = {"velocity": "mm/s", "displacement": "um"}
 MAX_CHANNELS = 16
+# ISO 10816-3:2009 Annex A (carried into ISO 20816-3:2022) zone boundaries of
+# broadband RMS velocity, mm/s: alert at B/C, danger at C/D. Written from
+# memory of the standard (the shared check values say so too).
+SEVERITY_ZONES = {
+    "group1-rigid": (4.5, 7.1),
+    "group1-flexible": (7.1, 11.0),
+    "group2-rigid": (2.8, 4.5),
+    "group2-flexible": (4.5, 7.1),
+}
 MAX_SAMPLE_RATE = 1_000_000.0
 
 # Which [source] keys each kind takes, beyond kind, sample_rate, channels, unit.
@@ -134,6 +143,7 @@ class BandConfig:
     baseline: Optional[float] = None
     alert_ratio: Optional[float] = None
     danger_ratio: Optional[float] = None
+    severity: Optional[str] = None  # an ISO 10816-3 preset, see SEVERITY_ZONES
 
     def edges_hz(self, speed_hz: Optional[float]) -> Tuple[float, float]:
         """Band edges in Hz, following the running speed for order bands."""
@@ -613,10 +623,22 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     hz = orders = None
     bearing = defect = None
     harmonic = 1
+    severity = None
+    if t.has("severity"):
+        severity = t.get_str("severity", None, tuple(SEVERITY_ZONES))
+        for key in ("hz", "orders", "bearing", "quantity", "alert", "danger", "spectrum"):
+            if t.has(key):
+                raise t.fail(key, f"severity = {severity!r} sets the edges, quantity and limits; "
+                                  f"leave {key} out, or drop severity and give them all")
+        # ISO 10816-3: 10-1000 Hz above 600 r/min, 2-1000 Hz for 120-600 r/min.
+        low = 2.0 if speed.rpm is not None and speed.rpm <= 600 else 10.0
+        hz = (low, min(1000.0, nyquist) if nyquist > 0 else 1000.0)
     given = [k for k in ("hz", "orders", "bearing") if t.has(k)]
     if len(given) > 1:
         raise t.fail(given[1], "give one of hz, orders or bearing, not " + " and ".join(given))
-    if t.has("bearing"):
+    if severity is not None:
+        pass  # the preset set the edges above
+    elif t.has("bearing"):
         bearing = t.get_str("bearing")
         if bearing not in bearings:
             raise t.bad("bearing", bearing, "the name of a [[bearing]] table"
@@ -644,11 +666,13 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
         raise t.fail("hz", "missing; give hz = [low, high], orders = [low, high] or bearing = NAME")
 
     spectrum = t.get_str("spectrum", "raw", ("raw", "envelope"))
-    quantity = t.get_str("quantity", None, QUANTITIES)
+    quantity = "velocity" if severity else t.get_str("quantity", None, QUANTITIES)
     if spectrum == "envelope" and quantity != "acceleration":
         raise t.bad("quantity", quantity, "'acceleration' on an envelope spectrum")
     alert = t.get_optional_float("alert")
     danger = t.get_optional_float("danger")
+    if severity is not None:
+        alert, danger = SEVERITY_ZONES[severity]
     if alert is not None and danger is not None and not alert < danger:
         raise t.bad("danger", danger, f"a limit above alert ({alert:g})")
     baseline = t.get_optional_float("baseline")
@@ -682,6 +706,7 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
         baseline=baseline,
         alert_ratio=alert_ratio,
         danger_ratio=danger_ratio,
+        severity=severity,
     )
     t.finish()
     return band

@@ -46,3 +46,30 @@ def test_overall_velocity_limits_are_iso_zone_boundaries(path):
     group = "group 1" if "group 1" in text else "group 2"
     support = "flexible" if "flexible" in text else "rigid"
     assert (band.alert, band.danger) == ISO_10816_3[(group, support)]
+
+
+@pytest.mark.parametrize("preset", sorted(ISO_10816_3))
+def test_severity_preset_gives_the_iso_zone_band(preset):
+    from monitor.config import parse
+
+    group, support = preset
+    name = f"{group.replace(' ', '')}-{support}"
+    text = f"""
+[node]
+name = "n"
+[source]
+kind = "simulator"
+sample_rate = 5120.0
+channels = ["x"]
+[speed]
+rpm = {{rpm}}
+[[band]]
+name = "overall"
+severity = "{name}"
+"""
+    # ISO 10816-3 (check-values.md): 10-1000 Hz above 600 r/min, 2-1000 Hz for 120-600 r/min.
+    fast = parse(text.format(rpm=1480.0)).bands[0]
+    slow = parse(text.format(rpm=450.0)).bands[0]
+    assert fast.hz == (10.0, 1000.0) and slow.hz == (2.0, 1000.0)
+    assert fast.quantity == "velocity"
+    assert (fast.alert, fast.danger) == ISO_10816_3[preset]
