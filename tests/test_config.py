@@ -485,6 +485,62 @@ NEWLINE_CASES = {
 }
 
 
+# Sections and keys beyond the interface's example, in its spirit (README).
+BEARING = """
+[envelope]
+band_hz = [1000.0, 2000.0]
+
+[[bearing]]
+name = "de"
+elements = 9
+element_diameter = 7.94
+pitch_diameter = 39.04
+
+[[band]]
+name = "outer"
+bearing = "de"
+defect = "bpfo"
+spectrum = "envelope"
+quantity = "acceleration"
+alert = 0.05
+"""
+MORE_CASES = {
+    "health-corrupt-above-one": Case(demo(("stale = 2.0", "stale = 2.0\ncorrupt = 1.5")), "health.corrupt",
+                                     "corrupt = 1.5", ["1.5", "<= 1"]),
+    "health-flatline-zero": Case(demo(("stale = 2.0", "stale = 2.0\nflatline = 0")), "health.flatline",
+                                 "flatline = 0", ["0", "> 0"]),
+    "capture-keep-zero": Case(demo() + "\n[capture]\nkeep = 0\n", "capture.keep", "keep = 0",
+                              ["0", "an integer from 1"]),
+    "capture-unknown-key": Case(demo() + "\n[capture]\nbefore = 3.0\n", "capture.before", "before = 3.0",
+                                ["unknown key", "seconds"]),
+    "envelope-band-above-nyquist": Case(demo() + BEARING.replace("[1000.0, 2000.0]", "[1000.0, 3000.0]"),
+                                        "envelope.band_hz", "band_hz", ["3000.0", "Nyquist"]),
+    "envelope-band-without-section": Case(demo() + BEARING.replace("[envelope]\nband_hz = [1000.0, 2000.0]\n", ""),
+                                          "band[5].spectrum", 'spectrum = "envelope"', ["needs an [envelope] section"]),
+    "bearing-pitch-below-element": Case(demo() + BEARING.replace("pitch_diameter = 39.04", "pitch_diameter = 5.0"),
+                                        "bearing[1].pitch_diameter", "pitch_diameter = 5.0",
+                                        ["5.0", "above element_diameter"]),
+    "bearing-unknown-defect": Case(demo() + BEARING.replace('defect = "bpfo"', 'defect = "outer"'),
+                                   "band[5].defect", 'defect = "outer"', ["'outer'", "'bpfo'"]),
+    "bearing-unknown-name": Case(demo() + BEARING.replace('bearing = "de"', 'bearing = "nde"'),
+                                 "band[5].bearing", 'bearing = "nde"', ["'nde'", "de"]),
+    "envelope-quantity-velocity": Case(demo() + BEARING.replace('quantity = "acceleration"\nalert = 0.05',
+                                                                 'quantity = "velocity"\nalert = 0.05'),
+                                       "band[5].quantity", ('quantity = "velocity"', 4), ["'velocity'", "envelope"]),
+    "severity-unknown": Case(demo(('hz = [10.0, 1000.0]\nquantity = "velocity"\nalert = 2.8\ndanger = 4.5',
+                                   'severity = "group3-rigid"')), "band[1].severity", "severity",
+                             ["'group3-rigid'", "'group2-rigid'"]),
+    "severity-with-limits": Case(demo(('hz = [10.0, 1000.0]\nquantity = "velocity"\n',
+                                       'severity = "group2-rigid"\n')), "band[1].alert", ("alert = ", 1),
+                                 ["severity", "leave alert out"]),
+    "baseline-without-ratio": Case(demo(("delay = 2.0", "delay = 2.0\nbaseline = 600.0")), "band[2].baseline",
+                                   "baseline = 600.0", ["needs alert_ratio or danger_ratio"]),
+    "mqtt-cert-without-tls": Case(demo() + '\n[mqtt]\ncert_file = "/etc/bandwatch/client.pem"\n',
+                                  "mqtt.cert_file", "cert_file", ["client.pem", "tls = false"]),
+}
+CASES.update(MORE_CASES)
+
+
 def _params():
     for name, case in CASES.items():
         yield pytest.param(case, id=name)
