@@ -34,9 +34,10 @@ def key(band: str, channel: str) -> str:
 class BaselineStore:
     """The learned values on disk (or in memory without a state directory)."""
 
-    def __init__(self, directory: Optional[str]) -> None:
+    def __init__(self, directory: Optional[str], read_only: bool = False) -> None:
         self.directory = directory
         self.path = os.path.join(directory, FILE) if directory else None
+        self.read_only = read_only  # reads what is stored, keeps what it learns in memory
         self.entries: Dict[str, Dict[str, float]] = self._load()
 
     def _load(self) -> Dict[str, Dict[str, float]]:
@@ -73,7 +74,7 @@ class BaselineStore:
         return len(gone)
 
     def _save(self) -> None:
-        if self.path is None:
+        if self.path is None or self.read_only:
             return
         tmp = self.path + ".tmp"
         try:

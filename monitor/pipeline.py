@@ -89,6 +89,7 @@ class Monitor:
         notifier: Optional[Notifier] = None,
         stall_s: float = STALL_S,
         state_dir: Optional[str] = None,
+        read_only: bool = False,
     ) -> None:
         self.config = config
         self.source = source
@@ -97,7 +98,7 @@ class Monitor:
         self.clock = clock
         self.notifier = notifier or Notifier(environ={})
         self.stall_s = stall_s
-        self.baseline_store = BaselineStore(state_dir)
+        self.baseline_store = BaselineStore(state_dir, read_only=read_only)
         self._stalled: Optional[str] = None
         self._reload_requested = threading.Event()
         self._loader: Optional[Callable[[], Config]] = None
@@ -236,6 +237,7 @@ class Monitor:
                 # reader or publisher stops the pings and systemd steps in.
                 if self._making_progress():
                     self.notifier.watchdog()
+                self.sink.tick()
                 if self._reload_requested.is_set():
                     self._reload()
                 block = self.source.read(READ_TIMEOUT_S)

@@ -44,3 +44,8 @@ class Sink:
 
     def close(self, offline: Payload) -> None:
         raise NotImplementedError
+
+    def tick(self) -> None:
+        """Called at every turn of the measuring loop (at least every 0.2 s,
+        samples or not), in the measuring thread; must return at once. A
+        backend that draws or polls does it here; most do nothing."""
