@@ -10,7 +10,7 @@ import logging
 import signal
 import sys
 import threading
-from typing import List, Optional, TextIO
+from typing import Dict, List, Optional, TextIO
 
 from . import __version__
 from .config import Config, load, quantity_unit
@@ -21,10 +21,7 @@ EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 log = logging.getLogger("bandwatch")
 
 # Commands promised by the interface whose work is not in this version yet.
-_NOT_YET = {
-    "replay": "replaying a recording",
-    "record": "recording a source",
-}
+_NOT_YET: Dict[str, str] = {}
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -89,6 +86,14 @@ def main(argv: Optional[List[str]] = None) -> int:
         return view(config, sys.stdout)
     if args.command == "reset-baseline":
         return _reset_baseline(config, args.bands)
+    if args.command == "record":
+        from .record import record_command
+
+        return record_command(config, args.output, args.seconds)
+    if args.command == "replay":
+        from .replay import replay_command
+
+        return replay_command(config, args.recording, args.plot)
     if args.command in _NOT_YET:
         print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
               file=sys.stderr)
@@ -205,7 +210,9 @@ def print_check(config: Config, out: TextIO) -> None:
         for b in config.bands:
             lo, hi = b.edges_hz(sp.nominal_hz)
             edges = f"{lo:.6g}..{hi:.6g}"
-            if b.bearing is not None:
+            if b.severity is not None:
+                edges += f" (ISO 10816-3 {b.severity})"
+            elif b.bearing is not None:
                 harmonic = f" x{b.harmonic}" if b.harmonic > 1 else ""
                 edges += f" ({b.bearing} {b.defect}{harmonic})"
             elif b.orders is not None:

@@ -6,6 +6,12 @@ waits until the port accepts connections, and stops it on exit. `stop()` and
 new broker. With ``persistence=True`` the broker keeps retained messages and
 persistent sessions (queued QoS 1 messages) across such a restart.
 
+Access control, as a fleet's broker would have it: ``users`` (name ->
+password, written with mosquitto_passwd), ``acl`` (the text of a mosquitto
+ACL file), and with ``tls`` a client certificate check
+(``require_certificate=True`` and the CA in ``tls["cafile"]``; with
+``identity_as_username=True`` the certificate's CN is the user the ACL sees).
+
 `Collector` is a paho subscriber (1.6 or 2.x) that records what arrives.
 """
 
@@ -14,6 +20,7 @@ import os
 import random
 import signal
 import socket
+import ssl
 import subprocess
 import threading
 import time
@@ -25,6 +32,54 @@ from conftest import need_program
 
 HOST = "127.0.0.1"
 PAHO2 = hasattr(mqtt, "CallbackAPIVersion")
+
+
+def _openssl(*args: str, cwd: str) -> None:
+    subprocess.run([need_program("openssl"), *args], cwd=cwd, check=True, capture_output=True)
+
+
+_EC_KEY = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes"]
+
+
+def make_certs(directory: Any, names: str) -> Dict[str, str]:
+    """A throw-away CA and a server certificate for `names` (subjectAltName).
+
+    Returns the paths as ``ca``, ``certfile``, ``keyfile``; the CA's key stays
+    in `directory` for `make_client_cert`.
+    """
+    d = str(directory)
+    os.makedirs(d, exist_ok=True)
+    _openssl("req", "-x509", *_EC_KEY, "-keyout", "ca.key", "-out", "ca.pem", "-days", "2",
+             "-subj", "/CN=bandwatch test CA",
+             "-addext", "basicConstraints=critical,CA:TRUE",
+             "-addext", "keyUsage=critical,keyCertSign,cRLSign", cwd=d)
+    _openssl("req", *_EC_KEY, "-keyout", "server.key", "-out", "server.csr", "-subj", "/CN=broker", cwd=d)
+    with open(os.path.join(d, "ext.cnf"), "w") as f:
+        f.write(
+            "basicConstraints=CA:FALSE\nkeyUsage=digitalSignature\nextendedKeyUsage=serverAuth\n"
+            "authorityKeyIdentifier=keyid\nsubjectKeyIdentifier=hash\n"
+            f"subjectAltName={names}\n"
+        )
+    _openssl("x509", "-req", "-in", "server.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
+             "-CAcreateserial", "-out", "server.pem", "-days", "2", "-extfile", "ext.cnf", cwd=d)
+    os.chmod(os.path.join(d, "server.key"), 0o644)  # mosquitto reads it
+    return {k: os.path.join(d, v) for k, v in
+            {"ca": "ca.pem", "certfile": "server.pem", "keyfile": "server.key"}.items()}
+
+
+def make_client_cert(directory: Any, cn: str) -> Dict[str, str]:
+    """A client certificate with common name `cn`, signed by the CA that
+    `make_certs` left in `directory`; paths as ``certfile`` and ``keyfile``."""
+    d = str(directory)
+    _openssl("req", *_EC_KEY, "-keyout", f"{cn}.key", "-out", f"{cn}.csr", "-subj", f"/CN={cn}", cwd=d)
+    with open(os.path.join(d, "client-ext.cnf"), "w") as f:
+        f.write(
+            "basicConstraints=CA:FALSE\nkeyUsage=digitalSignature\nextendedKeyUsage=clientAuth\n"
+            "authorityKeyIdentifier=keyid\nsubjectKeyIdentifier=hash\n"
+        )
+    _openssl("x509", "-req", "-in", f"{cn}.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
+             "-CAcreateserial", "-out", f"{cn}.pem", "-days", "2", "-extfile", "client-ext.cnf", cwd=d)
+    return {"certfile": os.path.join(d, f"{cn}.pem"), "keyfile": os.path.join(d, f"{cn}.key")}
 
 
 def _ephemeral_low() -> int:
@@ -77,6 +132,9 @@ class Broker:
         persistence: bool = False,
         users: Optional[Dict[str, str]] = None,
         tls: Optional[Dict[str, str]] = None,
+        acl: Optional[str] = None,
+        require_certificate: bool = False,
+        identity_as_username: bool = False,
     ) -> None:
         self.program = need_program("mosquitto")
         self.directory = directory
@@ -85,6 +143,11 @@ class Broker:
         self.persistence = persistence
         self.users = users or {}
         self.tls = tls
+        self.acl = acl
+        self.require_certificate = require_certificate
+        self.identity_as_username = identity_as_username
+        if (require_certificate or identity_as_username) and not (tls and tls.get("cafile")):
+            raise ValueError("a client certificate check needs tls with a 'cafile' to verify it against")
         self.conf = os.path.join(directory, "mosquitto.conf")
         self.log_path = os.path.join(directory, "mosquitto.log")
         self.process: Optional[subprocess.Popen] = None
@@ -109,13 +172,26 @@ class Broker:
                 subprocess.run([tool, *flags, passwd, name, password], check=True, capture_output=True)
             os.chmod(passwd, 0o600)
             lines += ["allow_anonymous false", f"password_file {passwd}"]
+        elif self.identity_as_username:
+            lines.append("allow_anonymous false")
         else:
             lines.append("allow_anonymous true")
+        if self.acl is not None:
+            acl_path = os.path.join(self.directory, "acl")
+            with open(acl_path, "w") as f:
+                f.write(self.acl)
+            lines.append(f"acl_file {acl_path}")
         if self.tls:
             lines += [
                 f"certfile {self.tls['certfile']}",
                 f"keyfile {self.tls['keyfile']}",
             ]
+            if self.tls.get("cafile"):
+                lines.append(f"cafile {self.tls['cafile']}")
+            if self.require_certificate or self.identity_as_username:
+                lines.append("require_certificate true")
+            if self.identity_as_username:
+                lines.append("use_identity_as_username true")
         lines += ["log_dest stderr", "log_type error", "log_type warning", "log_type notice"]
         with open(self.conf, "w") as f:
             f.write("\n".join(lines) + "\n")
@@ -234,12 +310,25 @@ class Message:
 class Collector:
     """Subscribes to `pattern` at `qos` and records every message, across reconnects.
 
+    ``username``/``password`` log in on a broker with users (and an ACL);
+    ``tls`` (``ca``, and ``certfile``/``keyfile`` for a client certificate)
+    connects over TLS.
     With ``session=True`` it keeps a persistent session under a fixed id, so
     a persistence-enabled broker queues QoS 1 messages for it while it is
     away (MQTT 3.1.1 section 3.1.2.4: Clean Session 0).
     """
 
-    def __init__(self, broker: Broker, pattern: str, qos: int = 1, session: bool = False, name: str = "") -> None:
+    def __init__(
+        self,
+        broker: Broker,
+        pattern: str,
+        qos: int = 1,
+        session: bool = False,
+        name: str = "",
+        username: str = "",
+        password: Optional[str] = None,
+        tls: Optional[Dict[str, str]] = None,
+    ) -> None:
         self.broker = broker
         self.pattern = pattern
         self.qos = qos
@@ -248,6 +337,11 @@ class Collector:
         self.subscribed = threading.Event()
         client_id = name or (f"collector-{os.getpid()}-{id(self)}" if session else "")
         self.client = make_client(client_id, clean_session=not session)
+        if username:
+            self.client.username_pw_set(username, password)
+        if tls:
+            self.client.tls_set(ca_certs=tls["ca"], certfile=tls.get("certfile"), keyfile=tls.get("keyfile"),
+                                tls_version=ssl.PROTOCOL_TLS_CLIENT)
         self.client.on_connect = self._on_connect
         self.client.on_subscribe = self._on_subscribe
         self.client.on_message = self._on_message

@@ -410,30 +410,6 @@ def test_sigterm_stops_a_live_run_cleanly():
 
 
 # ---------------------------------------------------------------------------
-# Commands promised by the interface but not built yet. Keep this one test;
-# delete it (or a row of it) when a command lands.
-
-
-@pytest.mark.parametrize(
-    "args",
-    [
-        ["replay", "-c", str(DEMO_PATH), "some.wav"],
-        ["record", "-c", str(DEMO_PATH), "-o", "{tmp}/out.wav", "--seconds", "1"],
-        ["view", "-c", str(DEMO_PATH)],
-    ],
-    ids=lambda args: args[0],
-)
-def test_commands_not_built_yet_say_so(tmp_path, args):
-    assert args[0] in cli._NOT_YET, f"`{args[0]}` is built now: delete its row here"
-    args = [a.replace("{tmp}", str(tmp_path)) for a in args]
-    result = bandwatch(*args, timeout=30)
-    assert result.returncode == 2
-    assert "not available" in result.stderr
-    assert result.stdout == ""
-    assert not (tmp_path / "out.wav").exists()
-
-
-# ---------------------------------------------------------------------------
 # usage
 
 

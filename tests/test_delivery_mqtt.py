@@ -1,6 +1,6 @@
 """MqttSink against a real mosquitto on loopback: status and will, ordered
 at-least-once events through outages and SIGKILL, the queue bound, summaries,
-levels, authentication and TLS."""
+levels, authentication, TLS and client certificates."""
 
 import json
 import logging
@@ -19,7 +19,7 @@ from conftest import need_program
 from monitor.config import MqttConfig
 from monitor.delivery.mqtt import MqttSink, client_id, read_password
 from monitor.errors import DeliveryError
-from mqtt_broker import Broker, Collector, broker_fixture, free_port, wait_for
+from mqtt_broker import Broker, Collector, broker_fixture, free_port, make_certs, make_client_cert, wait_for
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 NODE = "pump-2"
@@ -425,37 +425,10 @@ def test_username_and_password_file(tmp_path, caplog):
         assert secret not in caplog.text and "guess" not in caplog.text
 
 
-def _openssl(*args, cwd):
-    subprocess.run([need_program("openssl"), *args], cwd=cwd, check=True, capture_output=True)
-
-
-def _make_certs(directory, names):
-    """A throw-away CA and a server certificate for `names` (subjectAltName)."""
-    d = str(directory)
-    os.makedirs(d, exist_ok=True)
-    ec = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes"]
-    _openssl("req", "-x509", *ec, "-keyout", "ca.key", "-out", "ca.pem", "-days", "2",
-             "-subj", "/CN=bandwatch test CA",
-             "-addext", "basicConstraints=critical,CA:TRUE",
-             "-addext", "keyUsage=critical,keyCertSign,cRLSign", cwd=d)
-    _openssl("req", *ec, "-keyout", "server.key", "-out", "server.csr", "-subj", "/CN=broker", cwd=d)
-    with open(os.path.join(d, "ext.cnf"), "w") as f:
-        f.write(
-            "basicConstraints=CA:FALSE\nkeyUsage=digitalSignature\nextendedKeyUsage=serverAuth\n"
-            "authorityKeyIdentifier=keyid\nsubjectKeyIdentifier=hash\n"
-            f"subjectAltName={names}\n"
-        )
-    _openssl("x509", "-req", "-in", "server.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
-             "-CAcreateserial", "-out", "server.pem", "-days", "2", "-extfile", "ext.cnf", cwd=d)
-    os.chmod(os.path.join(d, "server.key"), 0o644)  # mosquitto reads it
-    return {k: os.path.join(d, v) for k, v in
-            {"ca": "ca.pem", "certfile": "server.pem", "keyfile": "server.key"}.items()}
-
-
 def test_tls_checks_the_ca_and_the_host_name(tmp_path, caplog):
-    good = _make_certs(tmp_path / "good", "DNS:localhost,IP:127.0.0.1")
-    other = _make_certs(tmp_path / "other", "DNS:localhost,IP:127.0.0.1")
-    misnamed = _make_certs(tmp_path / "misnamed", "DNS:broker.invalid")
+    good = make_certs(tmp_path / "good", "DNS:localhost,IP:127.0.0.1")
+    other = make_certs(tmp_path / "other", "DNS:localhost,IP:127.0.0.1")
+    misnamed = make_certs(tmp_path / "misnamed", "DNS:broker.invalid")
 
     def try_connect(certs, ca, name):
         with Broker(str(tmp_path / f"broker-{name}"), tls=certs) as broker:
@@ -475,3 +448,83 @@ def test_tls_checks_the_ca_and_the_host_name(tmp_path, caplog):
     with pytest.raises(DeliveryError) as err:
         MqttSink(MqttConfig(tls=True, ca_file=missing, queue_dir=str(tmp_path / "q")), NODE)
     assert missing in str(err.value)
+
+
+def test_bad_client_certificate_files_are_named(tmp_path):
+    certs = make_certs(tmp_path / "ca", "DNS:localhost,IP:127.0.0.1")
+    client = make_client_cert(tmp_path / "ca", "pump-2")
+    junk = tmp_path / "junk.pem"
+    junk.write_text("not a certificate\n")
+    locked = tmp_path / "locked"
+    # OpenSSL's own format for a key under a pass phrase (PKCS#8, encrypted).
+    subprocess.run([need_program("openssl"), "pkcs8", "-topk8", "-in", client["keyfile"], "-out", str(locked),
+                    "-passout", "pass:secret"], check=True, capture_output=True)
+    cases = [
+        ({"cert_file": str(tmp_path / "missing.pem")}, "cert_file", str(tmp_path / "missing.pem")),
+        ({"cert_file": client["certfile"], "key_file": str(tmp_path / "missing.key")}, "key_file",
+         str(tmp_path / "missing.key")),
+        ({"cert_file": str(junk), "key_file": client["keyfile"]}, "cert_file", str(junk)),
+        # A key from another pair: OpenSSL refuses the mismatch (KEY_VALUES_MISMATCH).
+        ({"cert_file": client["certfile"], "key_file": certs["keyfile"]}, "key_file", certs["keyfile"]),
+        ({"cert_file": client["certfile"], "key_file": str(locked)}, "encrypted", str(locked)),
+    ]
+    for i, (files, word, path) in enumerate(cases):
+        cfg = MqttConfig(tls=True, ca_file=certs["ca"], queue_dir=str(tmp_path / f"q{i}"), **files)
+        with pytest.raises(DeliveryError) as err:
+            MqttSink(cfg, NODE)
+        assert word in str(err.value) and repr(path) in str(err.value), str(err.value)
+    # The queue directory is released again after each refusal.
+    sink = MqttSink(MqttConfig(tls=True, ca_file=certs["ca"], queue_dir=str(tmp_path / "q0"),
+                               cert_file=client["certfile"], key_file=client["keyfile"]), NODE)
+    sink.close(OFFLINE)
+
+
+def test_broker_requiring_a_client_certificate(tmp_path, caplog):
+    certs = make_certs(tmp_path / "ca", "DNS:localhost,IP:127.0.0.1")
+    node = make_client_cert(tmp_path / "ca", "pump-2")
+    reader = make_client_cert(tmp_path / "ca", "reader")
+    server = {"certfile": certs["certfile"], "keyfile": certs["keyfile"], "cafile": certs["ca"]}
+    with Broker(str(tmp_path / "broker"), tls=server, require_certificate=True) as broker:
+        base = replace(config(broker, tmp_path, tls=True, ca_file=certs["ca"]), host="127.0.0.1")
+        with Collector(broker, topic("event"), tls={"ca": certs["ca"], **reader}) as sub:
+            # Without a certificate: refused, retried with backoff, events kept.
+            bare = MqttSink(base, NODE, reconnect_min=0.2, reconnect_max=0.4)
+
+            def refusals():
+                return [r for r in caplog.records if "closed the connection before accepting it" in r.getMessage()]
+
+            with caplog.at_level(logging.DEBUG, logger="bandwatch.delivery"):
+                bare.open(ONLINE, OFFLINE)
+                slowest = 0.0
+                for i in range(20):
+                    t0 = time.monotonic()
+                    bare.send("event", {"id": i})
+                    slowest = max(slowest, time.monotonic() - t0)
+                assert wait_for(lambda: len(refusals()) >= 5, 5)  # it keeps trying
+                assert not bare.connected
+                bare.close(OFFLINE)
+            assert slowest < 0.5, "send() blocked while the broker refused the connection"
+            assert bare.queued == 20
+            # RFC 8446 section 4.4.2 and 6.2: a TLS 1.3 server that needs a
+            # client certificate ends the handshake with "certificate_required".
+            assert "certificate required" in caplog.text
+            refused = refusals()
+            assert refused[0].levelno == logging.WARNING  # said once, loudly
+            assert all(r.levelno == logging.DEBUG for r in refused[1:])  # then quietly
+            times = [r.created for r in refused]
+            gaps = [b - a for a, b in zip(times, times[1:])]
+            # Backoff: never faster than reconnect_min, and growing to reconnect_max.
+            assert min(gaps) >= 0.15 and max(gaps) >= 0.35, gaps
+            assert "peer did not return a certificate" in broker.log()  # the broker's side of it
+            assert not sub.on(topic("event"))
+
+            # With a certificate from the broker's CA: accepted, and the kept events go out in order.
+            good = make_sink(replace(base, cert_file=node["certfile"], key_file=node["keyfile"]))
+            assert good.queued == 20
+            good.open(ONLINE, OFFLINE)
+            try:
+                assert wait_for(lambda: len(set(ids(sub.on(topic("event"))))) == 20, 10)
+                assert first_seen(ids(sub.on(topic("event")))) == list(range(20))
+                assert wait_for(lambda: good.queued == 0, 5)
+            finally:
+                good.close(OFFLINE)

@@ -54,6 +54,34 @@ CLOSE_TIMEOUT = 3.0  # seconds close() waits for the broker to confirm
 WINDOW = 16  # events in flight at once; paho's own limit is set above this
 
 
+if PAHO2:
+    _Client = mqtt.Client
+else:
+
+    class _Client(mqtt.Client):  # type: ignore[no-redef]
+        """paho 1.6 catches only ConnectionError around its socket reads and
+        writes; any other OSError (an SSLError such as a broker's refusal of
+        our certificate, a timeout) escapes and ends its network thread for
+        good. Raised as ConnectionError, paho drops the connection and
+        retries, as 2.x does by itself."""
+
+        def _sock_recv(self, bufsize: int) -> bytes:
+            try:
+                return super()._sock_recv(bufsize)
+            except (BlockingIOError, ConnectionError):
+                raise
+            except OSError as err:
+                raise ConnectionError(str(err)) from err
+
+        def _sock_send(self, buf: bytes) -> int:
+            try:
+                return super()._sock_send(buf)
+            except (BlockingIOError, ConnectionError):
+                raise
+            except OSError as err:
+                raise ConnectionError(str(err)) from err
+
+
 def client_id(prefix: str, node: str) -> str:
     """A stable MQTT client id: readable node name plus a digest of prefix/node.
 
@@ -240,14 +268,14 @@ class MqttSink(Sink):
     def _make_client(self, password: Optional[str], reconnect_min: float, reconnect_max: float) -> Any:
         cfg = self.cfg
         if PAHO2:
-            client = mqtt.Client(
+            client = _Client(
                 mqtt.CallbackAPIVersion.VERSION2,
                 client_id=self.client_id,
                 clean_session=True,
                 protocol=mqtt.MQTTv311,
             )
         else:
-            client = mqtt.Client(client_id=self.client_id, clean_session=True, protocol=mqtt.MQTTv311)
+            client = _Client(client_id=self.client_id, clean_session=True, protocol=mqtt.MQTTv311)
         if cfg.username:
             client.username_pw_set(cfg.username, password)
         if cfg.tls:
