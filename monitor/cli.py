@@ -115,6 +115,7 @@ def _run(config: Config) -> int:
         stop.set()
 
     monitor = None
+    ids = None
 
     def on_hangup(_signum: int, _frame: object) -> None:
         # systemctl reload: re-read the file in the measuring loop.
@@ -144,6 +145,8 @@ def _run(config: Config) -> int:
         return EXIT_FAILURE
     finally:
         source.close()
+        if ids is not None:
+            ids.close()
     return EXIT_OK
 
 

@@ -2,10 +2,11 @@
 
 Event ids increase by one per node and are never reused, across restarts and
 crashes. With an [mqtt] section the last id given out lives in the file
-`event-id` in `queue_dir`, written before the event is published: a temporary
-file, fsync, rename, fsync of the directory, so a power cut leaves either the
-old or the new number, never a torn one. Without [mqtt] (JSON lines on
-stdout) ids count from 1 in each run.
+`event-id` in `queue_dir`, written before the event is published: the number
+is rewritten in place at a fixed width (21 bytes, well inside one disk
+sector, which storage writes whole) and synced with one fsync, so an event
+costs one sync here. Without [mqtt] (JSON lines on stdout) ids count from 1
+in each run.
 """
 
 import logging
@@ -25,6 +26,7 @@ class EventIds:
     def __init__(self, directory: Optional[str] = None) -> None:
         self.directory = directory
         self.path = os.path.join(directory, ID_FILE) if directory else None
+        self._fd: Optional[int] = None
         self._last = self._load()
 
     @property
@@ -58,19 +60,17 @@ class EventIds:
         return int(text)
 
     def _store(self, value: int) -> None:
-        assert self.path is not None and self.directory is not None
-        tmp = self.path + ".tmp"
+        assert self.path is not None
         try:
-            with open(tmp, "w", encoding="ascii") as fh:
-                fh.write(f"{value}\n")
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, self.path)
-            fd = os.open(self.directory, os.O_RDONLY)
-            try:
-                os.fsync(fd)
-            finally:
-                os.close(fd)
+            if self._fd is None:
+                self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            os.pwrite(self._fd, f"{value:020d}\n".encode("ascii"), 0)
+            os.fsync(self._fd)
         except OSError as exc:
             # The event still goes out; the id may repeat after a crash, so say so.
             log.error("cannot store event id %d in %s: %s", value, self.path, exc.strerror or exc)
+
+    def close(self) -> None:
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None

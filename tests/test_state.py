@@ -49,3 +49,4 @@ def test_no_temporary_file_is_left(tmp_path):
     ids = EventIds(str(tmp_path))
     ids.take()
     assert sorted(os.listdir(tmp_path)) == ["event-id"]
+    assert (tmp_path / "event-id").read_text() == f"{1:020d}\n"

@@ -45,6 +45,7 @@ from ..payloads import encode
 from .base import TOPICS, Payload, Sink, topic
 from .queue import EventQueue
 
+_BEAT_S = 1.0  # the delivery thread wakes at least this often when idle
 log = logging.getLogger("bandwatch.delivery")
 
 # paho 2.x wants the callback API chosen up front; 1.x has only the old one.
@@ -255,6 +256,7 @@ class MqttSink(Sink):
         self.published = 0
         self.summaries_dropped = 0
         self._thread: Optional[threading.Thread] = None
+        self._beat = time.monotonic()
 
         self.queue = EventQueue(cfg.queue_dir, cfg.queue_limit)
         try:
@@ -331,6 +333,14 @@ class MqttSink(Sink):
         # loop_start retries the first connection too, so a broker that is
         # down never blocks the caller.
         self._client.loop_start()
+
+    def heartbeat(self) -> float:
+        """When the delivery thread last went round its loop (-inf once it
+        died); before open, now."""
+        thread = self._thread
+        if thread is None:
+            return time.monotonic()
+        return self._beat if thread.is_alive() else -float("inf")
 
     def send(self, suffix: str, payload: Payload) -> None:
         if self._closed:
@@ -470,7 +480,10 @@ class MqttSink(Sink):
         while True:
             with self._cond:
                 while not (self._notes or self._work or self._stop):
-                    timeout = None
+                    # Wake at least every second: the beat tells the
+                    # watchdog this thread is not stuck.
+                    self._beat = time.monotonic()
+                    timeout: Optional[float] = _BEAT_S
                     if self._closing is not None:
                         timeout = max(0.0, self._close_deadline - time.monotonic()) + 0.05
                     if not self._cond.wait(timeout) and self._closing is not None:
