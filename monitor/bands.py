@@ -16,7 +16,7 @@ are left out by construction.
 """
 
 from dataclasses import dataclass
-from typing import Dict, List, Mapping, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
@@ -95,12 +95,16 @@ class BandBank:
         self._fixed: Dict[int, Tuple[int, np.ndarray]] = {
             i: self._weights(band, None) for i, (band, _) in enumerate(self.pairs) if band.hz is not None
         }
-        self._groups: List[Tuple[BandConfig, List[int], List[int]]] = []
+        self._groups: List[Tuple[BandConfig, List[int], Any]] = []
         for i, (band, ch) in enumerate(self.pairs):
             if not self._groups or self._groups[-1][0] is not band:
                 self._groups.append((band, [], []))
             self._groups[-1][1].append(i)
             self._groups[-1][2].append(ch)
+        # Channels that run 0..k-1 in order are read as a slice, not a copy.
+        for n, (band, pairs, rows) in enumerate(self._groups):
+            if rows == list(range(rows[0], rows[0] + len(rows))):
+                self._groups[n] = (band, pairs, slice(rows[0], rows[0] + len(rows)))
         self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
         top = min(SEVERITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines) * line_weights(
@@ -128,20 +132,15 @@ class BandBank:
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
         values = np.empty(len(self.pairs))
+        edges: Dict[int, Tuple[float, float]] = {}
         for band, pairs, rows in self._groups:
             # One band's weights serve all its channels: one product per band.
             first, w = self._fixed.get(pairs[0]) or self._weights(band, speed_hz)
             psd = spectra[band.spectrum].psd[rows, first : first + len(w)]
             values[pairs] = np.sqrt(psd @ w * self.bin_hz)
+            edges[id(band)] = band.edges_hz(speed_hz)
         return [
-            BandValue(
-                name=band.name,
-                channel=self.channels[ch],
-                quantity=band.quantity,
-                unit=self._units[i],
-                value=float(values[i]),
-                edges_hz=band.edges_hz(speed_hz),
-            )
+            BandValue(band.name, self.channels[ch], band.quantity, self._units[i], float(values[i]), edges[id(band)])
             for i, (band, ch) in enumerate(self.pairs)
         ]
 

@@ -70,6 +70,7 @@ class SpectralStage:
         self._filled = 0
         self._next = 0
         self._frame = np.empty((channels, size))
+        self._parts = np.empty((channels, size + 2))  # squared real, imaginary parts
 
     def reset(self) -> None:
         """Forget every frame, after a gap: no result spans one."""
@@ -86,9 +87,11 @@ class SpectralStage:
         np.subtract(frame, frame.mean(axis=1, keepdims=True), out=self._frame)
         self._frame *= self.window.samples
         spectrum = np.fft.rfft(self._frame, axis=1)
+        # |X|^2 as the sum of squared real and imaginary parts, read from a
+        # float view of the complex result: no temporaries.
+        parts = np.square(spectrum.view(np.float64), out=self._parts)
         power = self._ring[self._next]
-        np.multiply(spectrum.real, spectrum.real, out=power)
-        power += spectrum.imag * spectrum.imag
+        np.add(parts[:, 0::2], parts[:, 1::2], out=power)
         power *= self._scale
         self._next = (self._next + 1) % self.averages
         self._filled = min(self._filled + 1, self.averages)
