@@ -7,6 +7,7 @@ goes to stdout.
 
 import argparse
 import logging
+import os
 import signal
 import sys
 import threading
@@ -65,6 +66,16 @@ def _setup_logging(level: str) -> None:
 
 
 def main(argv: Optional[List[str]] = None) -> int:
+    try:
+        return _main(argv)
+    except BrokenPipeError:
+        # The reader went away (`bandwatch check ... | head`): not an error.
+        # Point stdout at nothing so the interpreter's final flush is quiet.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
+
+
+def _main(argv: Optional[List[str]]) -> int:
     args = _parser().parse_args(argv)
     _setup_logging(args.log_level)
     try:
