@@ -34,9 +34,10 @@ gaps, lost_samples, mismatched, nonfinite), for health checks.
 
 import collections
 import logging
+import socket
 import threading
 import time
-from typing import Any, Deque, Dict, List, Optional
+from typing import Any, Callable, Deque, Dict, List, Optional
 
 import numpy as np
 
@@ -65,6 +66,26 @@ LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows")
 def endpoint(host: str, port: int) -> str:
     """host:port as people write it, with brackets around an IPv6 address."""
     return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+
+
+def bind(kind: str, host: str, port: int, socktype: int,
+         setup: Callable[[socket.socket], None]) -> socket.socket:
+    """A socket of `socktype` bound to host:port, after `setup` (options,
+    listen) ran on it; a SourceError naming the kind and address otherwise."""
+    try:
+        family, socktype, proto, _, address = socket.getaddrinfo(
+            host, port, type=socktype, flags=socket.AI_PASSIVE
+        )[0]
+        sock = socket.socket(family, socktype, proto)
+    except OSError as exc:
+        raise SourceError(f"{kind} source: cannot bind {endpoint(host, port)}: {exc}") from exc
+    try:
+        setup(sock)
+        sock.bind(address)
+    except OSError as exc:
+        sock.close()
+        raise SourceError(f"{kind} source: cannot bind {endpoint(host, port)}: {exc}") from exc
+    return sock
 
 
 class StreamSource(Source):

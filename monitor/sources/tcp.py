@@ -22,7 +22,7 @@ from typing import Any, Optional, Tuple
 
 from ..config import SourceConfig
 from ..errors import SourceError
-from .stream import POLL_S, READ_MAX, LinkSource, StreamSource, endpoint
+from .stream import POLL_S, READ_MAX, LinkSource, StreamSource, bind, endpoint
 
 log = logging.getLogger("bandwatch.sources")
 
@@ -137,23 +137,18 @@ class TcpServerSource(StreamSource):
         return f"tcp-server {endpoint(host, port)}"
 
     def _prepare(self) -> None:
-        host, port = self.config.host, self.config.port
-        try:
-            family, socktype, proto, _, address = socket.getaddrinfo(
-                host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE
-            )[0]
-            listener = socket.socket(family, socktype, proto)
-        except OSError as exc:
-            raise SourceError(f"tcp-server source: cannot listen on {endpoint(host, port)}: {exc}") from exc
-        try:
+        def setup(listener: socket.socket) -> None:
             # A restarted monitor must not wait out TIME_WAIT of its last run.
             listener.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-            listener.bind(address)
+
+        listener = bind(self.kind, self.config.host, self.config.port, socket.SOCK_STREAM, setup)
+        try:
             listener.listen(4)
             listener.setblocking(False)
         except OSError as exc:
             listener.close()
-            raise SourceError(f"tcp-server source: cannot listen on {endpoint(host, port)}: {exc}") from exc
+            raise SourceError(f"tcp-server source: cannot listen on "
+                              f"{endpoint(self.config.host, self.config.port)}: {exc}") from exc
         self._listener = listener
         self.address = tuple(listener.getsockname()[:2])  # type: ignore[assignment]
 

@@ -21,8 +21,7 @@ import socket
 from typing import Optional, Tuple
 
 from ..config import SourceConfig
-from ..errors import SourceError
-from .stream import POLL_S, StreamSource, endpoint
+from .stream import POLL_S, StreamSource, bind, endpoint
 
 log = logging.getLogger("bandwatch.sources")
 
@@ -48,24 +47,14 @@ class UdpSource(StreamSource):
         return f"udp {endpoint(host, port)}"
 
     def _prepare(self) -> None:
-        host, port = self.config.host, self.config.port
-        try:
-            family, socktype, proto, _, address = socket.getaddrinfo(
-                host, port, type=socket.SOCK_DGRAM, flags=socket.AI_PASSIVE
-            )[0]
-            sock = socket.socket(family, socktype, proto)
-        except OSError as exc:
-            raise SourceError(f"udp source: cannot bind {endpoint(host, port)}: {exc}") from exc
-        try:
+        def setup(sock: socket.socket) -> None:
             try:
                 sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, RECEIVE_BUFFER)
             except OSError:
                 pass  # keep the default buffer
-            sock.bind(address)
             sock.settimeout(POLL_S)
-        except OSError as exc:
-            sock.close()
-            raise SourceError(f"udp source: cannot bind {endpoint(host, port)}: {exc}") from exc
+
+        sock = bind(self.kind, self.config.host, self.config.port, socket.SOCK_DGRAM, setup)
         self._sock = sock
         self.address = tuple(sock.getsockname()[:2])  # type: ignore[assignment]
 
