@@ -165,7 +165,7 @@ def main() -> int:
         long_mb, long_s = replay_peak_mb(long)
         rows.append(("replay peak RSS, 1 min", f"{short_mb:.1f} MB", "-", True))
         rows.append((f"replay peak RSS, {args.minutes:g} min", f"{long_mb:.1f} MB",
-                     "<= 1 min + 10 MB", long_mb <= short_mb + 10))
+                     "<= 1 min + 2 MB", long_mb <= short_mb + 2))
         speed = args.minutes * 60.0 / long_s
         rows.append((f"replay speed, {args.minutes:g} min", f"{speed:.0f}x real time", "-", True))
 

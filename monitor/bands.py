@@ -15,8 +15,7 @@ below the band's low edge and DC, where integration would blow noise up,
 are left out by construction.
 """
 
-from dataclasses import dataclass
-from typing import Any, Dict, List, Mapping, Optional, Sequence, Tuple, Union
+from typing import Any, Dict, List, Mapping, NamedTuple, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
@@ -56,8 +55,9 @@ def quantity_factors(quantity: str, unit: str, bin_hz: float, lines: int) -> np.
     raise ValueError(f"{quantity=} is not acceleration, velocity or displacement")
 
 
-@dataclass(frozen=True)
-class BandValue:
+class BandValue(NamedTuple):
+    """One band's value on one channel (a tuple: made every hop, kept cheap)."""
+
     name: str
     channel: str
     quantity: str

@@ -552,7 +552,7 @@ def test_enough_kinds_of_broken_config():
     assert len(CASES) >= 30
 
 
-@pytest.mark.parametrize("case", _params())
+@pytest.mark.parametrize("case", list(_params()))
 def test_broken_config_is_refused(tmp_path, case):
     path = write(tmp_path, case.text)
     with pytest.raises(ConfigError) as info:
