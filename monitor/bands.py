@@ -15,6 +15,7 @@ below the band's low edge and DC, where integration would blow noise up,
 are left out by construction.
 """
 
+import math
 from typing import Any, Dict, List, Mapping, NamedTuple, Optional, Sequence, Tuple, Union
 
 import numpy as np
@@ -38,6 +39,21 @@ def line_weights(lo: float, hi: float, bin_hz: float, lines: int) -> np.ndarray:
     weights = np.clip((right - left) / bin_hz, 0.0, 1.0)
     weights[0] = 0.0
     return weights
+
+
+def _share(left: float, right: float, bin_hz: float) -> float:
+    """One line's share, (right - left) / bin_hz clipped to 0..1 exactly as
+    np.clip does it, on plain floats: cheaper for the few cut lines."""
+    share = (right - left) / bin_hz
+    if share != share:  # NaN passes through, as in np.clip
+        return share
+    share = share if share > 0.0 else 0.0
+    return share if share < 1.0 else 1.0
+
+
+def _root(power: float) -> float:
+    """np.sqrt on one plain float (math.sqrt rounds alike), NaN below zero."""
+    return math.sqrt(power) if power >= 0.0 else math.nan
 
 
 def quantity_factors(quantity: str, unit: str, bin_hz: float, lines: int) -> np.ndarray:
@@ -91,38 +107,61 @@ class BandBank:
         self._factors: Dict[str, np.ndarray] = {
             q: quantity_factors(q, unit, bin_hz, lines) for q in {b.quantity for b, _ in self.pairs}
         }
-        # Weights of fixed-Hz bands are computed once; order bands follow the speed.
-        self._fixed: Dict[int, Tuple[int, np.ndarray]] = {
-            i: self._weights(band, None) for i, (band, _) in enumerate(self.pairs) if band.hz is not None
-        }
-        self._groups: List[Tuple[BandConfig, List[int], Any]] = []
+        # Weight times factor of each line as a line wholly inside a band
+        # gets it (the edge rule's own expression): per hop only the few
+        # lines an edge cuts are worked out, the rest is a slice of this.
+        k = np.arange(lines)
+        whole = np.clip(((k + 0.5) * bin_hz - (k - 0.5) * bin_hz) / bin_hz, 0.0, 1.0)
+        self._inner = {q: whole * f for q, f in self._factors.items()}
+        self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
+        # One group per band: its channels' rows, its weights if its edges
+        # are fixed (order bands follow the speed), and the labels of its values.
+        self._groups: List[Tuple[BandConfig, Any, Optional[Tuple[int, np.ndarray]], List[Tuple[str, ...]]]] = []
+        rows: List[int] = []
         for i, (band, ch) in enumerate(self.pairs):
             if not self._groups or self._groups[-1][0] is not band:
-                self._groups.append((band, [], []))
-            self._groups[-1][1].append(i)
-            self._groups[-1][2].append(ch)
+                fixed = self._weights(band, band.hz) if band.hz is not None else None
+                rows = []
+                self._groups.append((band, rows, fixed, []))
+            rows.append(ch)
+            self._groups[-1][3].append((band.name, self.channels[ch], band.quantity, self._units[i]))
         # Channels that run 0..k-1 in order are read as a slice, not a copy.
-        for n, (band, pairs, rows) in enumerate(self._groups):
+        for n, (band, rows, fixed, labels) in enumerate(self._groups):
             if rows == list(range(rows[0], rows[0] + len(rows))):
-                self._groups[n] = (band, pairs, slice(rows[0], rows[0] + len(rows)))
-        self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
+                self._groups[n] = (band, slice(rows[0], rows[0] + len(rows)), fixed, labels)
         top = min(SEVERITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines) * line_weights(
             SEVERITY_HZ[0], top, bin_hz, lines
         )
 
-    def _weights(self, band: BandConfig, speed_hz: Optional[float]) -> Tuple[int, np.ndarray]:
-        """First line and the weights of the lines from there that the band touches."""
-        lo, hi = band.edges_hz(speed_hz)
-        first = max(1, int(np.floor(lo / self.bin_hz - 0.5)))
-        last = min(self.lines - 1, int(np.ceil(hi / self.bin_hz + 0.5)))
+    def _weights(self, band: BandConfig, edges: Tuple[float, float]) -> Tuple[int, np.ndarray]:
+        """First line and the weights of the lines from there that the band
+        with these edges touches (line_weights times the quantity's factors)."""
+        lo, hi = edges
+        df = self.bin_hz
+        first = max(1, math.floor(lo / df - 0.5))
+        last = min(self.lines - 1, math.ceil(hi / df + 0.5))
         if last < first:
             return first, np.zeros(0)
-        k = np.arange(first, last + 1)
-        left = np.maximum((k - 0.5) * self.bin_hz, lo)
-        right = np.minimum((k + 0.5) * self.bin_hz, hi)
-        weights = np.clip((right - left) / self.bin_hz, 0.0, 1.0)
-        return first, weights * self._factors[band.quantity][first : last + 1]
+        weights = self._inner[band.quantity][first : last + 1].copy()
+        factors = self._factors[band.quantity]
+        # Lines wholly inside the edges form one run, whose values the copy
+        # holds; the lines an edge cuts are at its ends: walk in from both.
+        k = first
+        while k <= last:
+            left, right = (k - 0.5) * df, (k + 0.5) * df
+            if lo <= left and right <= hi:
+                break
+            weights[k - first] = _share(max(left, lo), min(right, hi), df) * factors[k]
+            k += 1
+        j = last
+        while j > k:
+            left, right = (j - 0.5) * df, (j + 0.5) * df
+            if lo <= left and right <= hi:
+                break
+            weights[j - first] = _share(max(left, lo), min(right, hi), df) * factors[j]
+            j -= 1
+        return first, weights
 
     def evaluate(self, spectra: Union[Spectrum, Mapping[str, Spectrum]],
                  speed_hz: Optional[float]) -> List[BandValue]:
@@ -131,18 +170,15 @@ class BandBank:
         Spectrum serves as "raw"."""
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
-        values = np.empty(len(self.pairs))
-        edges: Dict[int, Tuple[float, float]] = {}
-        for band, pairs, rows in self._groups:
+        out: List[BandValue] = []
+        for band, rows, fixed, labels in self._groups:
             # One band's weights serve all its channels: one product per band.
-            first, w = self._fixed.get(pairs[0]) or self._weights(band, speed_hz)
+            edges = band.edges_hz(speed_hz)
+            first, w = fixed or self._weights(band, edges)
             psd = spectra[band.spectrum].psd[rows, first : first + len(w)]
-            values[pairs] = np.sqrt(psd @ w * self.bin_hz)
-            edges[id(band)] = band.edges_hz(speed_hz)
-        return [
-            BandValue(band.name, self.channels[ch], band.quantity, self._units[i], float(values[i]), edges[id(band)])
-            for i, (band, ch) in enumerate(self.pairs)
-        ]
+            for label, power in zip(labels, (psd @ w).tolist()):
+                out.append(BandValue(*label, _root(power * self.bin_hz), edges))
+        return out
 
     def velocity_rms(self, spectrum: Spectrum) -> np.ndarray:
         """Broadband RMS velocity over 10-1000 Hz (capped at Nyquist), mm/s,

@@ -87,7 +87,7 @@ class Health:
         # for "before any sample", so a fresh monitor judges all it has seen.
         self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
         self._flat_since: List[Optional[float]] = [None] * len(self.channels)
-        self._last_row: Optional[np.ndarray] = None
+        self._last_row: Optional[List[float]] = None
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
         self._top_line: Optional[int] = None
         # Totals for what sources do not count themselves.
@@ -136,11 +136,11 @@ class Health:
             lines = spectrum.psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.
             self._top_line = int(np.ceil((1.0 - ALIAS_TOP_SHARE) * (lines - 1)))
-        top = spectrum.psd[:, self._top_line :].sum(axis=1)
-        total = spectrum.psd[:, 1 : self._top_line].sum(axis=1) + top
-        for i, check in enumerate(self.alias):
-            share = float(top[i] / total[i]) if total[i] > 0 else None
-            self._update(check, share, t, out)
+        # np.add.reduce is what ndarray.sum calls, without its wrapper: every hop.
+        top = np.add.reduce(spectrum.psd[:, self._top_line :], axis=1)
+        total = np.add.reduce(spectrum.psd[:, 1 : self._top_line], axis=1) + top
+        for check, top_i, total_i in zip(self.alias, top.tolist(), total.tolist()):
+            self._update(check, top_i / total_i if total_i > 0 else None, t, out)
         return out
 
     def on_delivery(self, dropped: int, queued: int, t: float) -> List[Change]:
@@ -200,31 +200,28 @@ class Health:
         if n == 0:
             return
         block_start = t - (n - 1) / self.fs
-        # Index of each channel's last change in this block (-1: none), the
-        # first sample compared with the previous block's last. A moving
-        # channel almost always changes at its last sample: check that first.
-        last = np.full(raw.shape[1], n - 1)
-        if n > 1:
-            tail_still = raw[-1] == raw[-2]
-            if tail_still.any():
-                cols = np.flatnonzero(tail_still)
-                changed = raw[1:, cols] != raw[:-1, cols]
-                found = n - 1 - np.argmax(changed[::-1], axis=0)
-                last[cols] = np.where(changed.any(axis=0), found, -1)
-        else:
-            last[:] = -1
-        if self._last_row is None or lost:
-            first_moved = np.ones(raw.shape[1], dtype=bool)
-        else:
-            first_moved = raw[0] != self._last_row
-        last = np.where((last < 0) & first_moved, 0, last)
+        # The few rows compared, as plain floats: per channel the work is then
+        # a comparison or two, cheaper than numpy calls on short rows.
+        tail = raw[-1].tolist()
+        before_tail = raw[-2].tolist() if n > 1 else None
+        head = raw[0].tolist()
+        previous = None if lost else self._last_row
         for i, check in enumerate(self.flatline):
-            if last[i] >= 0:
-                self._flat_since[i] = block_start + last[i] / self.fs
+            # Index of the channel's last change in this block (-1: none), the
+            # first sample compared with the previous block's last. A moving
+            # channel almost always changes at its last sample: check that first.
+            if before_tail is not None and tail[i] != before_tail[i]:
+                last = n - 1
+            else:
+                last = _last_change(raw[:, i])
+                if last < 0 and (previous is None or head[i] != previous[i]):
+                    last = 0
+            if last >= 0:
+                self._flat_since[i] = block_start + last / self.fs
             elif self._flat_since[i] is None:
                 self._flat_since[i] = block_start
             self._update(check, t - self._flat_since[i], t, out)
-        self._last_row = raw[-1].copy()
+        self._last_row = tail
 
     def _rate(self, index: int, lost: int, timestamp_us: Optional[int], t: float, out: List[Change]) -> None:
         if timestamp_us is None:
@@ -246,3 +243,12 @@ class Health:
              "value": None if c.value is None or not math.isfinite(c.value) else c.value}
             for c in self.checks
         ]
+
+
+def _last_change(column: np.ndarray) -> int:
+    """Index of the last sample of `column` that differs from the one
+    before it, or -1 if it never changes."""
+    changed = column[1:] != column[:-1]
+    if not changed.any():
+        return -1
+    return len(column) - 1 - int(np.argmax(changed[::-1]))

@@ -113,6 +113,7 @@ class Monitor:
         cfg = self.config
         self.fs = self.source.sample_rate
         self.scale = np.asarray(cfg.source.scale, dtype=float)
+        self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self._build_stages()
         self._build_rules(None)
         self._samples = 0  # stream position, lost samples included
@@ -155,6 +156,10 @@ class Monitor:
             LevelMachine(list(zip(("alert", "danger"), base.limits())), b.hysteresis, b.delay)
             for (b, _), base in zip(self.bank.pairs, self.baselines)
         ]
+        # Per pair, its baseline if the band learns one (None: an update
+        # could never change anything), so most values skip that call.
+        self._learners = [base if b.baseline is not None else None
+                          for (b, _), base in zip(self.bank.pairs, self.baselines)]
         self.health = Health(cfg.health, cfg.source.channels, self.fs)
         if previous:
             keyed = [((b.name, self.config.source.channels[ch]), rule)
@@ -297,14 +302,14 @@ class Monitor:
         self._emit_health(self.health.on_block(
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
         ))
-        samples = block.samples * self.scale
+        samples = block.samples
         if self.capture is not None:
-            self.capture.feed(samples, self._samples + n)
+            self.capture.feed(samples * self.scale, self._samples + n)
         start = 0
         total = samples.shape[0]
         while start < total:
             take = min(total - start, self._pending)
-            self.ring.write(samples[start : start + take])
+            self.ring.write(samples[start : start + take], self._ring_scale)
             start += take
             self._samples += take
             self._pending -= take
@@ -350,10 +355,11 @@ class Monitor:
 
     def _apply_rules(self, result: Result) -> bool:
         changed = False
-        for (band, _), rule, base, value in zip(self.bank.pairs, self.band_rules, self.baselines, result.bands):
-            if base.update(value.value, result.stream_s):
+        t = result.stream_s
+        for rule, learner, base, value in zip(self.band_rules, self._learners, self.baselines, result.bands):
+            if learner is not None and learner.update(value.value, t):
                 rule.set_limits(list(zip(("alert", "danger"), base.limits())))
-            change = rule.update(value.value, result.stream_s)
+            change = rule.update(value.value, t)
             if change is None:
                 continue
             changed = True

@@ -5,6 +5,8 @@ always one contiguous slice: a write that would run off the end first moves
 the kept samples to the front (an amortised copy, no per-sample work).
 """
 
+from typing import Optional
+
 import numpy as np
 
 
@@ -25,8 +27,9 @@ class Ring:
         self._end = 0
         self.count = 0
 
-    def write(self, samples: np.ndarray) -> None:
-        """Append samples shaped (n, channels), n <= capacity."""
+    def write(self, samples: np.ndarray, scale: Optional[np.ndarray] = None) -> None:
+        """Append samples shaped (n, channels), n <= capacity, each channel
+        multiplied by its `scale` when one is given, shaped (channels, 1)."""
         n = samples.shape[0]
         if n > self.capacity:
             raise ValueError(f"block of {n=} samples exceeds the ring's {self.capacity=}")
@@ -34,7 +37,13 @@ class Ring:
             keep = min(self.count, self.capacity - n)
             self._buf[:, :keep] = self._buf[:, self._end - keep : self._end]
             self._end = keep
-        self._buf[:, self._end : self._end + n] = samples.T
+        kept = self._buf[:, self._end : self._end + n]
+        kept[...] = samples.T
+        if scale is not None:
+            # Scaled here, along each channel's row: on the (n, channels)
+            # block a per-channel factor would run an inner loop of length
+            # `channels`, several times slower.
+            kept *= scale
         self._end += n
         self.count = min(self.count + n, self.capacity)
 

@@ -42,6 +42,7 @@ class LevelMachine:
         self.limits: List[Tuple[str, float]] = [(n, float(v)) for n, v in limits if v is not None]
         self._above: List[Optional[float]] = [None] * len(self.limits)
         self._below: List[Optional[float]] = [None] * len(self.limits)
+        self._idle = [None] * len(self.limits)  # timers as they stand with nothing rising
         self._floor = min((v for _, v in self.limits), default=math.inf)
         self.index = 0
         if level != "normal":
@@ -69,7 +70,7 @@ class LevelMachine:
             # The common case, kept cheap: nothing raised, nothing rising.
             # The "below" timers only matter once a level is raised, and a
             # raise happens with the value above every lower limit's clear point.
-            if any(a is not None for a in self._above):
+            if self._above != self._idle:
                 self._above = [None] * len(self.limits)
             return None
         for i, (_, limit) in enumerate(self.limits):

@@ -70,7 +70,6 @@ class SpectralStage:
         self._filled = 0
         self._next = 0
         self._frame = np.empty((channels, size))
-        self._parts = np.empty((channels, size + 2))  # squared real, imaginary parts
 
     def reset(self) -> None:
         """Forget every frame, after a gap: no result spans one."""
@@ -84,12 +83,17 @@ class SpectralStage:
     def push(self, frame: np.ndarray) -> Optional[Spectrum]:
         """Add one frame, shape (channels, size); return the new average once
         `averages` frames are in."""
-        np.subtract(frame, frame.mean(axis=1, keepdims=True), out=self._frame)
+        # Means as ndarray.mean takes them (np.add.reduce, then a divide), so
+        # the numbers are the same, without its Python wrapper: every hop.
+        mean = np.add.reduce(frame, axis=1, keepdims=True)
+        mean /= self.size
+        np.subtract(frame, mean, out=self._frame)
         self._frame *= self.window.samples
         spectrum = np.fft.rfft(self._frame, axis=1)
-        # |X|^2 as the sum of squared real and imaginary parts, read from a
-        # float view of the complex result: no temporaries.
-        parts = np.square(spectrum.view(np.float64), out=self._parts)
+        # |X|^2 as the sum of squared real and imaginary parts, squared in
+        # place in a float view of the transform's own fresh result.
+        parts = spectrum.view(np.float64)
+        np.square(parts, out=parts)
         power = self._ring[self._next]
         np.add(parts[:, 0::2], parts[:, 1::2], out=power)
         power *= self._scale
@@ -97,4 +101,12 @@ class SpectralStage:
         self._filled = min(self._filled + 1, self.averages)
         if not self.ready:
             return None
-        return Spectrum(self._ring.mean(axis=0), self.bin_hz, self.enbw_hz, self.window)
+        # The mean over the ring likewise: the slots added in order into a
+        # fresh array, then divided, as ndarray.mean does, minus its first
+        # pass (a copy of slot 0).
+        ring = self._ring
+        psd = ring[0] + ring[1] if self.averages > 1 else ring[0].copy()
+        for slot in ring[2:]:
+            psd += slot
+        psd /= self.averages
+        return Spectrum(psd, self.bin_hz, self.enbw_hz, self.window)

@@ -36,14 +36,20 @@ class SpeedTracker:
         if hi - lo < 2:
             return self.speed_hz
         # Power summed over channels, over the search range and a line beyond.
-        part = spectrum.psd[:, lo - 1 : hi + 2].sum(axis=0)
+        # (np.add.reduce is what ndarray.sum calls; this runs every hop.)
+        part = np.add.reduce(spectrum.psd[:, lo - 1 : hi + 2], axis=0)
         inner = part[1:-1]
-        j = int(np.argmax(inner))
-        floor = float(np.partition(inner, len(inner) // 2)[len(inner) // 2])  # the median line
-        if j in (0, len(inner) - 1) or inner[j] < _CLEAR_OF_FLOOR * floor:
+        j = int(inner.argmax())
+        mid = len(inner) // 2
+        ranked = inner.copy()
+        ranked.partition(mid)  # as np.partition, in place on a copy
+        floor = float(ranked[mid])  # the median line
+        if j in (0, len(inner) - 1) or float(inner[j]) < _CLEAR_OF_FLOOR * floor:
             return self.speed_hz
-        # The two-line ratio (monitor.peaks) on magnitudes, for the one peak.
-        left, peak, right = np.sqrt(part[j : j + 3])
+        # The two-line ratio (monitor.peaks) on magnitudes, for the one peak,
+        # on plain floats (math.sqrt rounds as np.sqrt does; sums of power
+        # are never negative): scalar arithmetic on them is cheaper.
+        left, peak, right = map(math.sqrt, part[j : j + 3].tolist())
         side = 1.0 if right >= left else -1.0
         offset = float(spectrum.window.offset_from_ratio(max(left, right) / peak)) if peak > 0 else 0.0
         self.speed_hz = (lo + j + side * offset) * spectrum.bin_hz

@@ -50,8 +50,14 @@ def test_run_publishes_status_summaries_events_and_levels(tmp_path):
         assert status == ["online", "offline"]
         ids = [e["id"] for e in events]
         assert ids == list(range(1, len(ids) + 1)) and len(ids) >= 3
-        # 40 s of stream at one summary per 10 s: the first result, then 10, 20, 30 s.
-        assert len(sub.on("plant/demo-fan/summary")) == 4
+        # 40 s of stream at one summary per 10 s: the first result, then 10,
+        # 20, 30 s. Summaries are QoS 0 and dropped while the connection is
+        # not up yet (README, Delivery); the unpaced run can reach its first
+        # result before that, so only the later three are certain.
+        stamps = [p["stream_s"] for p in payloads(sub, "plant/demo-fan/summary")]
+        later = [s for s in stamps if s >= 10.0]
+        assert len(later) == 3 and all(10.0 * (i + 1) <= s < 10.0 * (i + 1) + 0.5 for i, s in enumerate(later))
+        assert len(stamps) in (3, 4)
         assert all(m.qos == 0 for m in sub.on("plant/demo-fan/summary"))
         assert sub.on("plant/demo-fan/levels")
         # Ids survive the restart (spec section 4): the next run goes on counting.
