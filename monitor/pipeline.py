@@ -114,6 +114,9 @@ class Monitor:
         self.fs = self.source.sample_rate
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
+        self.capture: Optional[Capture] = None
+        if cfg.capture is not None:
+            self.capture = Capture(cfg.capture, cfg.node, cfg.source.channels, cfg.source.unit, self.fs)
         self._build_stages()
         self._build_rules(None)
         self._samples = 0  # stream position, lost samples included
@@ -124,11 +127,6 @@ class Monitor:
     def _build_stages(self) -> None:
         """Ring and spectral stages: sized from [spectrum], allocated once."""
         cfg = self.config
-        if getattr(self, "capture", None) is None and cfg.capture is not None:
-            self.capture: Optional[Capture] = Capture(cfg.capture, cfg.node, cfg.source.channels,
-                                                      cfg.source.unit, self.fs)
-        elif not hasattr(self, "capture"):
-            self.capture = None
         spec = cfg.spectrum
         channels = len(cfg.source.channels)
         self.ring = Ring(channels, spec.span)
@@ -212,7 +210,9 @@ class Monitor:
             refused.append("[source] settings")
         if config.mqtt != old.mqtt:
             refused.append("[mqtt] settings")
-        keep = {"node": old.node, "source": old.source, "mqtt": old.mqtt,
+        if config.capture != old.capture:
+            refused.append("[capture] settings")
+        keep = {"node": old.node, "source": old.source, "mqtt": old.mqtt, "capture": old.capture,
                 "summary_interval": old.summary_interval, "prefix": old.prefix}
         new = dataclasses.replace(config, **keep)
         levels = self.levels()
