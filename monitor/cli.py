@@ -16,6 +16,7 @@ from typing import Dict, List, Optional, TextIO
 from . import __version__
 from .config import Config, load, quantity_unit
 from .errors import BandwatchError, ConfigError
+from .signals import stop_on_signals
 
 EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 
@@ -119,14 +120,7 @@ def _run(config: Config) -> int:
     from .sources import open_source
     from .state import EventIds
 
-    stop = threading.Event()
-
-    def on_signal(signum: int, _frame: object) -> None:
-        log.info("received %s, stopping", signal.Signals(signum).name)
-        stop.set()
-
     monitor = None
-    ids = None
 
     def on_hangup(_signum: int, _frame: object) -> None:
         # systemctl reload: re-read the file in the measuring loop.
@@ -134,8 +128,6 @@ def _run(config: Config) -> int:
             log.info("received SIGHUP, reloading %s", config.path)
             monitor.request_reload(lambda: load(config.path))
 
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
     signal.signal(signal.SIGHUP, on_hangup)
     try:
         source = open_source(config.source)
@@ -143,6 +135,7 @@ def _run(config: Config) -> int:
     except BandwatchError as exc:
         log.error("cannot open the source: %s", exc)
         return EXIT_FAILURE
+    ids = None
     try:
         ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
         sink = open_sink(config)
@@ -150,7 +143,8 @@ def _run(config: Config) -> int:
         monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier(), state_dir=state_dir)
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
                  len(config.source.channels), source.sample_rate)
-        monitor.run(stop)
+        with stop_on_signals(threading.Event(), "the monitor") as stop:
+            monitor.run(stop)
     except BandwatchError as exc:
         log.error("%s", exc)
         return EXIT_FAILURE

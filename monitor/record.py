@@ -23,7 +23,6 @@ import json
 import logging
 import math
 import os
-import signal
 import struct
 import sys
 import threading
@@ -35,6 +34,7 @@ import numpy as np
 from .config import Config
 from .errors import BandwatchError
 from .recording import META_ID, RecordingError, RecordingWriter
+from .signals import stop_on_signals
 from .sources import open_source
 from .sources.base import Source
 
@@ -235,18 +235,8 @@ def record_command(config: Config, output: str, seconds: float, err: Optional[Te
     if not os.path.isdir(folder):
         return _usage(f"cannot write {output}: the folder {folder} does not exist", err)
 
-    stop = threading.Event()
-
-    def on_signal(signum: int, _frame: object) -> None:
-        log.info("received %s, closing the recording", signal.Signals(signum).name)
-        stop.set()
-
-    previous = {s: signal.signal(s, on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
-    try:
+    with stop_on_signals(threading.Event(), "the recording") as stop:
         return _record(config, output, seconds, stop, err)
-    finally:
-        for s, handler in previous.items():
-            signal.signal(s, handler)
 
 
 def _record(config: Config, output: str, seconds: float, stop: threading.Event, err: TextIO) -> int:

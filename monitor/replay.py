@@ -40,7 +40,6 @@ import dataclasses
 import logging
 import math
 import os
-import signal
 import sys
 import threading
 import time
@@ -55,6 +54,7 @@ from .errors import BandwatchError, ConfigError
 from .payloads import encode
 from .pipeline import Monitor, Result
 from .recording import RecordingError, RecordingReader, open_recording
+from .signals import stop_on_signals
 from .sources import open_source
 from .sources.base import Block, Source
 from .state import EventIds
@@ -605,14 +605,7 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
                 progress = Progress(err, reader.duration)
         except RecordingError:
             pass  # replay() reports it below
-    stop = threading.Event()
-
-    def on_signal(signum: int, _frame: object) -> None:
-        log.info("received %s, stopping the replay", signal.Signals(signum).name)
-        stop.set()
-
-    previous = {s: signal.signal(s, on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
-    try:
+    with stop_on_signals(threading.Event(), "the replay") as stop:
         try:
             rep = replay(config, recording, out, stop, keep_history=plot is not None, progress=progress)
         except (ConfigError, RecordingError) as exc:
@@ -624,9 +617,6 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
                 progress.clear()
             log.error("%s", exc)
             return EXIT_FAILURE
-    finally:
-        for s, handler in previous.items():
-            signal.signal(s, handler)
     write_table(rep, err)
     if plot is not None:
         try:

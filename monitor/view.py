@@ -35,6 +35,7 @@ from .config import Config, quantity_unit
 from .delivery.base import Payload, Sink
 from .errors import BandwatchError
 from .pipeline import Monitor
+from .signals import stop_on_signals
 from .sources import open_source
 from .state import EventIds
 from .stats import time_stats
@@ -539,32 +540,15 @@ def _modes(out: TextIO, environ: Mapping[str, str]) -> Tuple[bool, bool]:
     return screen, screen and not environ.get("NO_COLOR")
 
 
-def _catch_signals(stop: threading.Event) -> Dict[int, object]:
-    """SIGINT, SIGTERM and SIGHUP end the view cleanly (main thread only)."""
-    if threading.current_thread() is not threading.main_thread():
-        return {}
-
-    def on_signal(signum: int, _frame: object) -> None:
-        stop.set()
-
-    old = {}
-    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
-        old[sig] = signal.signal(sig, on_signal)
-    return old
-
-
 def view(config: Config, out: Optional[TextIO] = None, stop: Optional[threading.Event] = None,
          environ: Optional[Mapping[str, str]] = None) -> int:
     """Run `bandwatch view` until the source ends or `stop` is set (SIGINT,
     SIGTERM, SIGHUP set it). Returns the exit code: 0, or 1 on a failure."""
     out = sys.stdout if out is None else out
-    stop = stop or threading.Event()
-    old = _catch_signals(stop)
-    try:
-        return _view(config, out, stop, os.environ if environ is None else environ)
-    finally:
-        for sig, handler in old.items():
-            signal.signal(sig, handler)  # type: ignore[arg-type]
+    # No log line for the signal: it would land on the screen being restored.
+    with stop_on_signals(stop or threading.Event(), None,
+                         (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)) as stopping:
+        return _view(config, out, stopping, os.environ if environ is None else environ)
 
 
 def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[str, str]) -> int:
