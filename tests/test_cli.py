@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from monitor import __version__, cli
+from monitor import __version__
 
 if sys.version_info >= (3, 11):
     import tomllib
