@@ -25,7 +25,7 @@ persistent event id (a file written, fsynced and renamed, then its directory
 fsynced), as `bandwatch run` does. The report shows the time spent in each.
 
 The config is built here: besides an ordinary overall-velocity band, one band
-per channel over pure noise (5-6 kHz) with its alert limit at the median of
+per channel over pure noise (5-6 kHz) with its warning limit at the median of
 its own values, no delay and almost no hysteresis, so levels flip thousands
 of times and the queue bound is exercised. Real machines raise far fewer
 events; this is a stress test of delivery, not an example config.
@@ -96,8 +96,8 @@ rpm = 1480.0
 name = "overall"
 hz = [10.0, 1000.0]
 quantity = "velocity"
-alert = 2.8
-danger = 4.5
+warning = 2.8
+alarm = 4.5
 {noise_bands}
 [mqtt]
 host = "127.0.0.1"
@@ -113,7 +113,7 @@ name = "noise-{ch}"
 channel = "{ch}"
 hz = [{lo}, {hi}]
 quantity = "acceleration"
-alert = {alert}
+warning = {warning}
 hysteresis = 0.001
 delay = 0.0
 """
@@ -137,8 +137,8 @@ def closed_port() -> int:
     raise RuntimeError("no free loopback port found")
 
 
-def make_config(port: int, queue_dir: str, queue_limit: int, alerts: Dict[str, float]) -> Config:
-    bands = "".join(NOISE_BAND.format(ch=ch, lo=NOISE_HZ[0], hi=NOISE_HZ[1], alert=repr(alerts.get(ch, 1.0)))
+def make_config(port: int, queue_dir: str, queue_limit: int, warnings: Dict[str, float]) -> Config:
+    bands = "".join(NOISE_BAND.format(ch=ch, lo=NOISE_HZ[0], hi=NOISE_HZ[1], warning=repr(warnings.get(ch, 1.0)))
                     for ch in CHANNELS)
     text = CONFIG.format(rate=RATE, channels=json.dumps(list(CHANNELS)), noise_bands=bands, port=port,
                          queue_dir=queue_dir, queue_limit=queue_limit)
@@ -431,10 +431,10 @@ def main() -> int:
 
         config = with_scale(config)
         calib_chunks = chunks[: max(1, int(len(chunks) * min(1.0, CALIBRATION_S / seconds)))]
-        alerts = calibrate(config, calib_chunks)
+        warnings = calibrate(config, calib_chunks)
         config = with_scale(make_config(closed, outage_dir, args.queue_limit, alerts))
         print(f"  {wire_mb:.1f} MB of int16 frames, held in memory, made in {time.perf_counter() - t0:.1f} s; "
-              "noise band alert limits (their medians): " + ", ".join(f"{ch} {v:.4g} g" for ch, v in alerts.items()))
+              "noise band warning limits (their medians): " + ", ".join(f"{ch} {v:.4g} g" for ch, v in warnings.items()))
 
         reset_peak_memory()
         base_s = run_pipeline(config, chunks)

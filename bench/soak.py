@@ -9,7 +9,7 @@ on-disk event queue and event-id file. Stream time comes from samples, so
 24 hours pass in minutes. The first minute runs each disturbance once; then
 every 15 minutes of stream time:
 
-  1:00-5:00    the 1x band rises past alert, then past danger, then falls back
+  1:00-5:00    the 1x band rises past warning, then past alarm, then falls back
   6:00         a sequence gap (Block.lost), so no spectrum spans it
   7:00         5 s without samples, on a clock that the source moves on
                (the `stale` check reads that clock, never sleeps)
@@ -84,8 +84,8 @@ SETTLE_S = 30.0  # stream seconds an action needs before its event must be seen
 WAIT_S = 15.0  # wall seconds to wait for the broker connection or an empty queue
 
 # 1x band limits (mm/s RMS) and the level of each rise.
-ALERT_MM_S, DANGER_MM_S = 2.0, 4.0
-RISE_MM_S = {"alert": 3.0, "danger": 5.0}
+WARNING_MM_S, ALARM_MM_S = 2.0, 4.0
+RISE_MM_S = {"warning": 3.0, "alarm": 5.0}
 
 CONFIG = """\
 # The soak's machine: invented, an electric-motor-driven fan at 1480 rpm.
@@ -115,16 +115,16 @@ search_hz = [20.0, 30.0]
 name = "overall"
 hz = [10.0, 1000.0]
 quantity = "velocity"
-alert = 8.0
-danger = 12.0
+warning = 8.0
+alarm = 12.0
 
 [[band]]
 name = "1x"
 channel = "x"
 orders = [0.8, 1.2]
 quantity = "velocity"
-alert = {alert_1x}
-danger = {danger_1x}
+warning = {warning_1x}
+alarm = {alarm_1x}
 delay = 2.0
 
 [[band]]
@@ -132,15 +132,15 @@ name = "2x"
 channel = "x"
 orders = [1.8, 2.2]
 quantity = "velocity"
-alert = {alert_2x}
-danger = 3.0
+warning = {warning_2x}
+alarm = 3.0
 
 [[band]]
 name = "high"
 hz = [1000.0, {high_top}]
 quantity = "acceleration"
-alert = 0.5
-danger = 1.0
+warning = 0.5
+alarm = 1.0
 
 [capture]
 seconds = 2.0
@@ -159,9 +159,9 @@ queue_dir = "{queue_dir}"
 
 # Reload variants, taken in turn. "broken" puts a band edge above Nyquist.
 VARIANTS: Dict[str, Dict[str, Any]] = {
-    "original": dict(averages=4, alert_1x=ALERT_MM_S, danger_1x=DANGER_MM_S, alert_2x=1.5, high_top=2500.0),
-    "other": dict(averages=3, alert_1x=ALERT_MM_S, danger_1x=DANGER_MM_S, alert_2x=1.8, high_top=2400.0),
-    "broken": dict(averages=4, alert_1x=ALERT_MM_S, danger_1x=DANGER_MM_S, alert_2x=1.5, high_top=3000.0),
+    "original": dict(averages=4, warning_1x=WARNING_MM_S, alarm_1x=ALARM_MM_S, warning_2x=1.5, high_top=2500.0),
+    "other": dict(averages=3, warning_1x=WARNING_MM_S, alarm_1x=ALARM_MM_S, warning_2x=1.8, high_top=2400.0),
+    "broken": dict(averages=4, warning_1x=WARNING_MM_S, alarm_1x=ALARM_MM_S, warning_2x=1.5, high_top=3000.0),
 }
 RELOAD_TURN = ("other", "broken", "original")
 
@@ -176,11 +176,11 @@ class Action(NamedTuple):
 
 def _one_cycle(start: float, turn: int) -> List[Action]:
     return [
-        Action(start + 60, "rise", "alert"), Action(start + 180, "rise", "danger"), Action(start + 300, "rise", None),
+        Action(start + 60, "rise", "warning"), Action(start + 180, "rise", "alarm"), Action(start + 300, "rise", None),
         Action(start + 360, "gap", 2048),
         Action(start + 420, "stale", 5.0),
         Action(start + 480, "broker-down"),
-        Action(start + 500, "rise", "alert"), Action(start + 560, "rise", "danger"), Action(start + 620, "rise", None),
+        Action(start + 500, "rise", "warning"), Action(start + 560, "rise", "alarm"), Action(start + 620, "rise", None),
         Action(start + 700, "broker-up"),
         Action(start + 800, "reload", RELOAD_TURN[turn % len(RELOAD_TURN)]),
     ]
@@ -191,7 +191,7 @@ def schedule(end_s: float) -> List[Action]:
     each kind once, so what is measured after it is growth, not first use."""
     actions = [
         Action(5, "gap", 2048), Action(12, "stale", 3.0),
-        Action(15, "rise", "alert"), Action(20, "broker-down"), Action(22, "rise", "danger"),
+        Action(15, "rise", "warning"), Action(20, "broker-down"), Action(22, "rise", "alarm"),
         Action(28, "broker-up"), Action(30, "rise", None),
         Action(40, "reload", "other"), Action(45, "reload", "broken"), Action(50, "reload", "original"),
     ]
@@ -572,7 +572,7 @@ def check_bounds(soak: Soak) -> List[Tuple[str, str, bool]]:
 
     events = soak.sink.events
     expected = {
-        ("1x", "danger"): _due(soak, "rise", "danger"),
+        ("1x", "alarm"): _due(soak, "rise", "alarm"),
         ("gap", "fault"): _due(soak, "gap"),
         ("stale", "fault"): _due(soak, "stale"),
         ("config", "fault"): _due(soak, "reload", "broken"),
@@ -669,7 +669,7 @@ def main(argv: Optional[List[str]] = None) -> int:
     out.write(f"soak: {args.hours:g} h of stream in {wall:.1f} s of wall time, "
               f"{soak.end_s / wall:.0f} x real time\n")
     outages = f"{done['broker-down']} broker outages" if soak.broker is not None else "no broker outages (no broker)"
-    out.write(f"done: {done['rise-danger']} band rises, {done['gap']} gaps, {done['stale']} stale periods, "
+    out.write(f"done: {done['rise-alarm']} band rises, {done['gap']} gaps, {done['stale']} stale periods, "
               f"{outages}, {done['reload']} reloads ({done['reload-broken']} of a broken file)\n")
     broken = False
     for name, detail, held in check_bounds(soak):

@@ -2,7 +2,7 @@
 
 A band with `baseline = N` learns its typical value over the first N seconds
 of stream after start (or after a reset): the median of its values, so a
-passing knock does not set it. Then `alert_ratio` and `danger_ratio` raise
+passing knock does not set it. Then `warning_ratio` and `alarm_ratio` raise
 levels at those multiples of it. Until it is learned, ratio limits are
 absent and cannot raise a level.
 
@@ -105,7 +105,7 @@ class Baseline:
         return self.band.baseline is not None and self.value is None
 
     def limits(self) -> Tuple[Optional[float], Optional[float]]:
-        """(alert, danger) now: absolute ones as given, ratio ones once learned."""
+        """(warning, alarm) now: absolute ones as given, ratio ones once learned."""
         band = self.band
 
         def pick(absolute: Optional[float], ratio: Optional[float]) -> Optional[float]:
@@ -113,7 +113,7 @@ class Baseline:
                 return absolute
             return None if self.value is None else ratio * self.value
 
-        return pick(band.alert, band.alert_ratio), pick(band.danger, band.danger_ratio)
+        return pick(band.warning, band.warning_ratio), pick(band.alarm, band.alarm_ratio)
 
     def update(self, value: float, t: float) -> bool:
         """Feed one band value; True when learning has just finished."""

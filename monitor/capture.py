@@ -1,7 +1,7 @@
 """Raw samples around an alarm, kept for the analyst.
 
 The last `seconds + after` seconds of samples (in the unit, after scale) sit
-in a fixed ring allocated at start. When a band rises to alert or danger,
+in a fixed ring allocated at start. When a band rises to warning or alarm,
 the capture is named at once (the event carries the name) and written once
 `after` more seconds of samples have arrived: `seconds` before the trigger
 and `after` after it, as a recording (monitor.recording) in `dir`. Triggers

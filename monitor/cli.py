@@ -214,7 +214,7 @@ def print_check(config: Config, out: TextIO) -> None:
         w(f"envelope: carrier band {lo:g}..{hi:g} Hz, same frames and averaging as the spectrum\n")
     w(f"bands: {len(config.bands)}\n")
     if config.bands:
-        rows = [("name", "channels", "edges (Hz)", "quantity", "unit", "alert", "danger", "hyst", "delay")]
+        rows = [("name", "channels", "edges (Hz)", "quantity", "unit", "warning", "alarm", "hyst", "delay")]
         for b in config.bands:
             lo, hi = b.edges_hz(sp.nominal_hz)
             edges = f"{lo:.6g}..{hi:.6g}"
@@ -229,7 +229,7 @@ def print_check(config: Config, out: TextIO) -> None:
                 edges += " envelope"
             rows.append((
                 b.name, ",".join(b.channels), edges, b.quantity, quantity_unit(b.quantity, src.unit),
-                "-" if b.alert is None else f"{b.alert:g}", "-" if b.danger is None else f"{b.danger:g}",
+                "-" if b.warning is None else f"{b.warning:g}", "-" if b.alarm is None else f"{b.alarm:g}",
                 f"{b.hysteresis:g}", f"{b.delay:g} s",
             ))
         widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]

@@ -30,7 +30,7 @@ QUANTITIES = ("acceleration", "velocity", "displacement")
 QUANTITY_UNITS = {"velocity": "mm/s", "displacement": "um"}
 MAX_CHANNELS = 16
 # ISO 10816-3:2009 Annex A (carried into ISO 20816-3:2022) zone boundaries of
-# broadband RMS velocity, mm/s: alert at B/C, danger at C/D. Written from
+# broadband RMS velocity, mm/s: warning at B/C, alarm at C/D. Written from
 # memory of the standard (the shared check values say so too).
 SEVERITY_ZONES = {
     "group1-rigid": (4.5, 7.1),
@@ -128,8 +128,8 @@ class BandConfig:
     quantity: str
     hz: Optional[Tuple[float, float]] = None
     orders: Optional[Tuple[float, float]] = None
-    alert: Optional[float] = None
-    danger: Optional[float] = None
+    warning: Optional[float] = None
+    alarm: Optional[float] = None
     hysteresis: float = 0.1
     delay: float = 3.0
     spectrum: str = "raw"  # or "envelope"
@@ -139,10 +139,10 @@ class BandConfig:
     defect: Optional[str] = None
     harmonic: int = 1
     # Limits relative to a learned typical value: `baseline` seconds of
-    # learning, then alert/danger at these multiples of it.
+    # learning, then warning/alarm at these multiples of it.
     baseline: Optional[float] = None
-    alert_ratio: Optional[float] = None
-    danger_ratio: Optional[float] = None
+    warning_ratio: Optional[float] = None
+    alarm_ratio: Optional[float] = None
     severity: Optional[str] = None  # an ISO 10816-3 preset, see SEVERITY_ZONES
 
     def edges_hz(self, speed_hz: Optional[float]) -> Tuple[float, float]:
@@ -178,7 +178,7 @@ class HealthConfig:
     clipping: float = 0.001  # share of samples at full scale
     flatline: float = 5.0  # s without any change on a channel
     rate: float = 0.01  # relative disagreement of timestamps with sample_rate
-    alias: float = 0.2  # share of power in the top 10 % below Nyquist
+    nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
 
 
 @dataclass(frozen=True)
@@ -600,8 +600,17 @@ def _order_limit(t: _Table, key: str, value: Any, orders: Tuple[float, float], s
                     f"{orders[1]:g} x {top_hz:g} Hz is above the Nyquist frequency {nyquist:g} Hz")
 
 
+# Limit keys of the first release. Refused rather than read as aliases, so a
+# file says exactly one thing and the user learns the new word once.
+RENAMED_BAND_KEYS = {"alert": "warning", "danger": "alarm",
+                     "alert_ratio": "warning_ratio", "danger_ratio": "alarm_ratio"}
+
+
 def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
                bearings: Dict[str, BearingConfig]) -> BandConfig:
+    for old, new in RENAMED_BAND_KEYS.items():
+        if t.has(old):
+            raise t.fail(old, f"renamed; use {new}")
     name = t.get_name("name")
     if t.has("channel") and t.has("channels"):
         raise t.fail("channels", "give channel or channels, not both")
@@ -626,7 +635,7 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     severity = None
     if t.has("severity"):
         severity = t.get_str("severity", None, tuple(SEVERITY_ZONES))
-        for key in ("hz", "orders", "bearing", "quantity", "alert", "danger", "spectrum"):
+        for key in ("hz", "orders", "bearing", "quantity", "warning", "alarm", "spectrum"):
             if t.has(key):
                 raise t.fail(key, f"severity = {severity!r} sets the edges, quantity and limits; "
                                   f"leave {key} out, or drop severity and give them all")
@@ -669,34 +678,34 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     quantity = "velocity" if severity else t.get_str("quantity", None, QUANTITIES)
     if spectrum == "envelope" and quantity != "acceleration":
         raise t.bad("quantity", quantity, "'acceleration' on an envelope spectrum")
-    alert = t.get_optional_float("alert")
-    danger = t.get_optional_float("danger")
+    warning = t.get_optional_float("warning")
+    alarm = t.get_optional_float("alarm")
     if severity is not None:
-        alert, danger = SEVERITY_ZONES[severity]
-    if alert is not None and danger is not None and not alert < danger:
-        raise t.bad("danger", danger, f"a limit above alert ({alert:g})")
+        warning, alarm = SEVERITY_ZONES[severity]
+    if warning is not None and alarm is not None and not warning < alarm:
+        raise t.bad("alarm", alarm, f"a limit above warning ({warning:g})")
     baseline = t.get_optional_float("baseline")
     if baseline is not None and baseline > 7 * 86400:
         raise t.bad("baseline", baseline, "seconds of learning, > 0 and at most 604800 (a week)")
-    alert_ratio = t.get_optional_float("alert_ratio")
-    danger_ratio = t.get_optional_float("danger_ratio")
-    for level, ratio, absolute in (("alert", alert_ratio, alert), ("danger", danger_ratio, danger)):
+    warning_ratio = t.get_optional_float("warning_ratio")
+    alarm_ratio = t.get_optional_float("alarm_ratio")
+    for level, ratio, absolute in (("warning", warning_ratio, warning), ("alarm", alarm_ratio, alarm)):
         if ratio is not None and absolute is not None:
             raise t.fail(f"{level}_ratio", f"give {level} or {level}_ratio, not both")
         if ratio is not None and baseline is None:
             raise t.fail(f"{level}_ratio", "needs baseline = SECONDS to learn the value it multiplies")
-    if baseline is not None and alert_ratio is None and danger_ratio is None:
-        raise t.fail("baseline", "needs alert_ratio or danger_ratio, the multiples that raise levels")
-    if alert_ratio is not None and danger_ratio is not None and not alert_ratio < danger_ratio:
-        raise t.bad("danger_ratio", danger_ratio, f"a ratio above alert_ratio ({alert_ratio:g})")
+    if baseline is not None and warning_ratio is None and alarm_ratio is None:
+        raise t.fail("baseline", "needs warning_ratio or alarm_ratio, the multiples that raise levels")
+    if warning_ratio is not None and alarm_ratio is not None and not warning_ratio < alarm_ratio:
+        raise t.bad("alarm_ratio", alarm_ratio, f"a ratio above warning_ratio ({warning_ratio:g})")
     band = BandConfig(
         name=name,
         channels=channels,
         quantity=quantity,
         hz=hz,
         orders=orders,
-        alert=alert,
-        danger=danger,
+        warning=warning,
+        alarm=alarm,
         hysteresis=t.get_float("hysteresis", 0.1, lo=0.0, hi=0.99),
         delay=t.get_float("delay", 3.0, lo=0.0, hi=86400.0),
         spectrum=spectrum,
@@ -704,8 +713,8 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
         defect=defect,
         harmonic=harmonic,
         baseline=baseline,
-        alert_ratio=alert_ratio,
-        danger_ratio=danger_ratio,
+        warning_ratio=warning_ratio,
+        alarm_ratio=alarm_ratio,
         severity=severity,
     )
     t.finish()
@@ -737,6 +746,8 @@ def _read_envelope(t: _Table, nyquist: float) -> EnvelopeConfig:
 
 
 def _read_health(t: _Table) -> HealthConfig:
+    if t.has("alias"):
+        raise t.fail("alias", "renamed; use nyquist (the share of power in the top 10 % below Nyquist)")
     health = HealthConfig(
         stale=t.get_float("stale", 2.0, lo=0.0, lo_open=True, hi=3600.0),
         window=t.get_float("window", 10.0, lo=0.0, lo_open=True, hi=3600.0),
@@ -744,7 +755,7 @@ def _read_health(t: _Table) -> HealthConfig:
         clipping=t.get_float("clipping", 0.001, lo=0.0, lo_open=True, hi=1.0),
         flatline=t.get_float("flatline", 5.0, lo=0.0, lo_open=True, hi=86400.0),
         rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
-        alias=t.get_float("alias", 0.2, lo=0.0, lo_open=True, hi=1.0),
+        nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
     )
     t.finish()
     return health

@@ -11,7 +11,7 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | clipping | channel | share of samples at the integer type's full scale, last `window` | `clipping` |
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
-| alias    | channel | share of the power in the top 10 % below Nyquist         | `alias`           |
+| nyquist  | channel | share of the power in the top 10 % below Nyquist         | `nyquist`           |
 | queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
@@ -36,7 +36,7 @@ _SNAPSHOT_S = 0.1
 # Timestamps must span this much stream time before the rate is judged, so
 # that arrival jitter of single frames does not count.
 _RATE_BASELINE_S = 5.0
-ALIAS_TOP_SHARE = 0.1  # the top 10 % of the band below Nyquist
+NYQUIST_TOP_SHARE = 0.1  # the top 10 % of the band below Nyquist
 
 
 @dataclass
@@ -69,9 +69,9 @@ class Health:
         self.rate = check("rate", None, "share", config.rate)
         self.clipping = [check("clipping", c, "share", config.clipping) for c in self.channels]
         self.flatline = [check("flatline", c, "s", config.flatline) for c in self.channels]
-        # Alias: a little hysteresis and delay, since the share of a noisy
+        # Nyquist strip: a little hysteresis and delay, since the share of a noisy
         # spectrum wavers around any limit.
-        self.alias = [check("alias", c, "share", config.alias, 0.2, 2.0) for c in self.channels]
+        self.nyquist = [check("nyquist", c, "share", config.nyquist, 0.2, 2.0) for c in self.channels]
         self.queue = check("queue", None, "count", 1.0)
         self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
@@ -79,7 +79,7 @@ class Health:
             + self.clipping
             + self.flatline
             + [self.rate]
-            + self.alias
+            + self.nyquist
             + [self.queue, self.config_check]
         )
         self._dropped_base = 0
@@ -135,11 +135,11 @@ class Health:
         if self._top_line is None:
             lines = spectrum.psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.
-            self._top_line = int(np.ceil((1.0 - ALIAS_TOP_SHARE) * (lines - 1)))
+            self._top_line = int(np.ceil((1.0 - NYQUIST_TOP_SHARE) * (lines - 1)))
         # np.add.reduce is what ndarray.sum calls, without its wrapper: every hop.
         top = np.add.reduce(spectrum.psd[:, self._top_line :], axis=1)
         total = np.add.reduce(spectrum.psd[:, 1 : self._top_line], axis=1) + top
-        for check, top_i, total_i in zip(self.alias, top.tolist(), total.tolist()):
+        for check, top_i, total_i in zip(self.nyquist, top.tolist(), total.tolist()):
             self._update(check, top_i / total_i if total_i > 0 else None, t, out)
         return out
 

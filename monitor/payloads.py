@@ -12,6 +12,10 @@ from typing import Any, Dict, Optional
 
 Payload = Dict[str, Any]
 
+# The `limits` object of a health check, which has no band limits; the same
+# shape as a band's, so consumers read `limits.warning` everywhere.
+NO_LIMITS: Payload = {"warning": None, "alarm": None}
+
 
 def utc_now() -> str:
     """UTC time, ISO 8601 with milliseconds and Z."""

@@ -27,7 +27,7 @@ from .delivery.base import Sink
 from .envelope import EnvelopeStage
 from .health import Change, Health
 from .notify import Notifier
-from .payloads import Payload, num, stamp, utc_now
+from .payloads import NO_LIMITS, Payload, num, stamp, utc_now
 from .peaks import interpolate_peak
 from .ring import Ring
 from .rules import BAND_LEVELS, LevelMachine
@@ -151,7 +151,7 @@ class Monitor:
         self.baseline_store.reload()  # a reset-baseline takes effect here
         self.baselines = [Baseline(b, cfg.source.channels[ch], self.baseline_store) for b, ch in self.bank.pairs]
         self.band_rules = [
-            LevelMachine(list(zip(("alert", "danger"), base.limits())), b.hysteresis, b.delay)
+            LevelMachine(list(zip(("warning", "alarm"), base.limits())), b.hysteresis, b.delay)
             for (b, _), base in zip(self.bank.pairs, self.baselines)
         ]
         # Per pair, its baseline if the band learns one (None: an update
@@ -358,18 +358,16 @@ class Monitor:
         t = result.stream_s
         for rule, learner, base, value in zip(self.band_rules, self._learners, self.baselines, result.bands):
             if learner is not None and learner.update(value.value, t):
-                rule.set_limits(list(zip(("alert", "danger"), base.limits())))
+                rule.set_limits(list(zip(("warning", "alarm"), base.limits())))
             change = rule.update(value.value, t)
             if change is None:
                 continue
             changed = True
             ch = self.config.source.channels.index(value.channel)
             event = self._event_base("band", value.name, value.channel, change, result.stream_s)
-            alert, danger = base.limits()
             event.update(
                 value=num(value.value),
-                alert=num(alert),
-                danger=num(danger),
+                limits=self._limits(base),
                 unit=value.unit,
                 quantity=value.quantity,
                 speed_hz=num(result.speed_hz),
@@ -382,6 +380,12 @@ class Monitor:
             log.info("%s/%s %s -> %s at %.3g %s", value.name, value.channel, change[0], change[1],
                      value.value, value.unit)
         return changed
+
+    @staticmethod
+    def _limits(base) -> Payload:
+        """The limits in force now (learned ones once known), as payloads carry them."""
+        warning, alarm = base.limits()
+        return {"warning": num(warning), "alarm": num(alarm)}
 
     def _event_base(self, kind: str, name: str, channel: Optional[str], change, stream_s: float) -> Payload:
         event = stamp(self.node, stream_s)
@@ -398,7 +402,7 @@ class Monitor:
             dominant = None
             if latest is not None and check.channel is not None:
                 dominant = latest.dominant_hz[self.config.source.channels.index(check.channel)]
-            event.update(value=num(check.value), alert=None, danger=None, unit=check.unit, quantity=None,
+            event.update(value=num(check.value), limits=dict(NO_LIMITS), unit=check.unit, quantity=None,
                          speed_hz=num(latest.speed_hz if latest else None), dominant_hz=num(dominant))
             self.sink.send("event", event)
             log.warning("health %s%s %s -> %s (%.3g %s)", check.name,
@@ -413,10 +417,11 @@ class Monitor:
     def _levels_payload(self, result: Result) -> Payload:
         payload = stamp(self.node, self._stream_s)
         rows = [
-            {"name": v.name, "channel": v.channel, "level": rule.level, "value": num(v.value)}
-            for v, rule in zip(result.bands, self.band_rules)
+            {"name": v.name, "channel": v.channel, "level": rule.level, "value": num(v.value),
+             "limits": self._limits(base)}
+            for v, rule, base in zip(result.bands, self.band_rules, self.baselines)
         ]
-        rows.extend({**row, "value": num(row["value"])} for row in self.health.rows())
+        rows.extend({**row, "value": num(row["value"]), "limits": dict(NO_LIMITS)} for row in self.health.rows())
         payload["levels"] = rows
         return payload
 
@@ -441,7 +446,8 @@ class Monitor:
         payload["speed_hz"] = num(result.speed_hz)
         payload["channels"] = channels
         payload["bands"] = [
-            {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level}
-            for v, rule in zip(result.bands, self.band_rules)
+            {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level,
+             "limits": self._limits(base)}
+            for v, rule, base in zip(result.bands, self.band_rules, self.baselines)
         ]
         return payload

@@ -8,7 +8,7 @@ is swapped for the recording (kind "file", never paced). What goes where:
 - stderr: logs, a progress bar when stderr is a terminal (at most ten
   updates a second, cleared at the end), and at the end a table per band
   and channel: limits, maximum and the stream time it came, time at or above
-  alert and danger (the hop durations of the results at or above the limit,
+  warning and alarm (the hop durations of the results at or above the limit,
   summed), and the number of events; then the health events counted.
 - `--plot PNG` (matplotlib, the `plot` extra): band trends against their
   limits, and the spectrum at the worst moment with the band edges marked.
@@ -178,18 +178,18 @@ class _EventSink(Sink):
 
 class Tally:
     """Per band and channel, over every result: maximum and its stream time,
-    time at or above alert and danger, events."""
+    time at or above warning and alarm, events."""
 
     def __init__(self, rows: List[Tuple[str, str, str, Optional[float], Optional[float]]], hop_s: float) -> None:
-        self.rows = rows  # (band, channel, unit, alert, danger), in result order
+        self.rows = rows  # (band, channel, unit, warning, alarm), in result order
         self.hop_s = hop_s
         n = len(rows)
-        self.alert = np.array([np.nan if r[3] is None else r[3] for r in rows], dtype=float)
-        self.danger = np.array([np.nan if r[4] is None else r[4] for r in rows], dtype=float)
+        self.warning = np.array([np.nan if r[3] is None else r[3] for r in rows], dtype=float)
+        self.alarm = np.array([np.nan if r[4] is None else r[4] for r in rows], dtype=float)
         self.max = np.full(n, -np.inf)
         self.max_at = np.full(n, np.nan)
-        self.above_alert = np.zeros(n)
-        self.above_danger = np.zeros(n)
+        self.above_warning = np.zeros(n)
+        self.above_alarm = np.zeros(n)
         self.results = 0
 
     def add(self, stream_s: float, values: np.ndarray) -> None:
@@ -198,8 +198,8 @@ class Tally:
         self.max[higher] = values[higher]
         self.max_at[higher] = stream_s
         # A comparison with NaN (no limit) is False: nothing is added.
-        self.above_alert += self.hop_s * (values >= self.alert)
-        self.above_danger += self.hop_s * (values >= self.danger)
+        self.above_warning += self.hop_s * (values >= self.warning)
+        self.above_alarm += self.hop_s * (values >= self.alarm)
 
 
 class History:
@@ -253,8 +253,8 @@ class History:
 
 
 class Worst(NamedTuple):
-    """The result with the highest band value relative to its alert limit
-    (danger where a band has only that), or the highest value when no band
+    """The result with the highest band value relative to its warning limit
+    (alarm where a band has only that), or the highest value when no band
     has a limit."""
 
     score: float
@@ -372,11 +372,11 @@ def replay(
         # on the wall clock while a file is read.
         monitor = Monitor(cfg, source, sink, ids=EventIds(),
                           clock=lambda: (source.samples + source.lost) / fs)
-        rows = [(b.name, cfg.source.channels[ch], quantity_unit(b.quantity, cfg.source.unit), b.alert, b.danger)
+        rows = [(b.name, cfg.source.channels[ch], quantity_unit(b.quantity, cfg.source.unit), b.warning, b.alarm)
                 for b, ch in monitor.bank.pairs]
         tally = Tally(rows, spec.hop / fs)
         history = History(len(rows)) if keep_history else None
-        reference = np.where(np.isfinite(tally.alert), tally.alert, tally.danger)
+        reference = np.where(np.isfinite(tally.warning), tally.warning, tally.alarm)
         state = {"seen": 0, "worst": None}
 
         def observe() -> None:
@@ -464,14 +464,14 @@ def write_table(rep: Replayed, err: TextIO) -> None:
     if t.results == 0:
         span = rep.config.spectrum.span / fs
         err.write(f"no result: one needs {span:.6g} s of samples without a gap\n")
-    table = [("band", "channel", "unit", "alert", "danger", "max", "max at s",
-              "above alert s", "above danger s", "events")]
-    for i, (name, channel, unit, alert, danger) in enumerate(t.rows):
+    table = [("band", "channel", "unit", "warning", "alarm", "max", "max at s",
+              "above warning s", "above alarm s", "events")]
+    for i, (name, channel, unit, warning, alarm) in enumerate(t.rows):
         table.append((
-            name, channel, unit, _cell(alert, "g"), _cell(danger, "g"),
+            name, channel, unit, _cell(warning, "g"), _cell(alarm, "g"),
             _cell(t.max[i], ".6g"), _cell(t.max_at[i], ".3f"),
-            _cell(t.above_alert[i] if alert is not None else None, ".3f"),
-            _cell(t.above_danger[i] if danger is not None else None, ".3f"),
+            _cell(t.above_warning[i] if warning is not None else None, ".3f"),
+            _cell(t.above_alarm[i] if alarm is not None else None, ".3f"),
             str(rep.events.get(("band", name, channel), 0)),
         ))
     widths = [max(len(row[k]) for row in table) for k in range(len(table[0]))]
@@ -518,7 +518,7 @@ def draw_plot(rep: Replayed, path: str) -> None:
             ax.sharex(axes[0])
         for i in pairs:
             ax.plot(t, values[:, i], lw=0.9, label=tally.rows[i][1])
-        for limit, colour, label in ((band.alert, "tab:orange", "alert"), (band.danger, "tab:red", "danger")):
+        for limit, colour, label in ((band.warning, "tab:orange", "warning"), (band.alarm, "tab:red", "alarm")):
             if limit is not None:
                 ax.axhline(limit, color=colour, ls="--", lw=1.0, label=f"{label} {limit:g}")
         if worst is not None:
@@ -568,8 +568,8 @@ def _draw_spectrum(ax: Any, rep: Replayed) -> None:
                 fontweight="bold" if chosen else "normal")
         shown += 1
     ax.set_xlim(freqs[0], freqs[-1])
-    relative = (f", {worst.score:.3g} x its {'alert' if band.alert is not None else 'danger'} limit"
-                if worst.relative and (band.alert is not None or band.danger is not None) else "")
+    relative = (f", {worst.score:.3g} x its {'warning' if band.warning is not None else 'alarm'} limit"
+                if worst.relative and (band.warning is not None or band.alarm is not None) else "")
     what = "envelope spectrum" if kind == "envelope" else "spectrum"
     ax.set_title(f"{what} of {band_value.channel} at {result.stream_s:.1f} s, the worst moment: "
                  f"{band_value.name} {band_value.value:.3g} {band_value.unit}{relative}", loc="left",

@@ -10,7 +10,7 @@ restarts every timer, since "stayed above" is then unknown.
 import math
 from typing import List, Optional, Sequence, Tuple
 
-BAND_LEVELS = ("normal", "alert", "danger")
+BAND_LEVELS = ("normal", "warning", "alarm")
 HEALTH_LEVELS = ("normal", "fault")
 
 # Stream times are sample counts divided by the rate; allow for rounding.
@@ -21,7 +21,7 @@ class LevelMachine:
     """Levels above `normal`, each with its limit, ascending.
 
     `limits` pairs a level name with its limit, e.g.
-    [("alert", 2.8), ("danger", 4.5)]; a level whose limit is None is left out.
+    [("warning", 2.8), ("alarm", 4.5)]; a level whose limit is None is left out.
     """
 
     def __init__(

@@ -47,11 +47,13 @@ PLAIN_REFRESH_S = 1.0  # one plain line per second
 EVENTS_SHOWN = 5
 RATE_S = 3.0  # results per second are counted over about this much wall time
 
-# Bar scale: full scale is danger * 1.25 (danger at 80 % of the bar), or
-# alert * 1.6 when there is no danger limit; a larger value stretches it.
-DANGER_SPAN = 1.25
-ALERT_SPAN = 1.6
-BAR_FILL, BAR_EMPTY, BAR_ALERT, BAR_DANGER = "#", ".", "A", "D"
+# Each band row shows numbers first: the value, both limits, and the value as
+# a share of the next limit up (the one a rise would cross next; the top one
+# once it is crossed). The bar is a plain proportion of the top limit (the
+# alarm limit, or the warning limit where a band has only that), with no
+# marks inside it: a full bar means "at or past the top limit", and the share
+# column says by how much.
+BAR_FILL, BAR_EMPTY, BAR_OVER = "=", " ", ">"
 BAR_MIN, BAR_MAX = 8, 50
 
 # ECMA-48 control sequences, and DECTCEM (VT220) to hide and show the cursor.
@@ -62,8 +64,10 @@ CLEAR_SCREEN = "\x1b[2J"
 HIDE_CURSOR = "\x1b[?25l"
 SHOW_CURSOR = "\x1b[?25h"
 RESET = "\x1b[0m"
-STYLES = {"normal": "\x1b[32m", "alert": "\x1b[33m", "danger": "\x1b[1;31m", "fault": "\x1b[1;31m",
-          "dim": "\x1b[2m"}
+# Style only on the level word: normal stays plain, warning is bold magenta,
+# alarm and fault are bold reverse video (readable on any palette, and still
+# distinct on a monochrome terminal).
+STYLES = {"warning": "\x1b[1;35m", "alarm": "\x1b[1;7m", "fault": "\x1b[1;7m", "dim": "\x1b[2m"}
 
 
 # ---------------------------------------------------------------- snapshot
@@ -76,8 +80,8 @@ class BandRow:
     value: Optional[float]
     unit: str
     level: str
-    alert: Optional[float] = None
-    danger: Optional[float] = None
+    warning: Optional[float] = None
+    alarm: Optional[float] = None
     note: str = ""  # e.g. "learning baseline"
 
 
@@ -158,35 +162,41 @@ def _clip(text: str, width: int) -> str:
     return text if len(text) <= width else text[: max(0, width - 1)] + "~"
 
 
-def bar_scale(value: Optional[float], alert: Optional[float], danger: Optional[float]) -> Optional[float]:
-    """Full scale of a band's bar: max(danger * 1.25, value), or
-    max(alert * 1.6, value) without a danger limit; None if nothing to draw."""
-    v = value if value is not None and math.isfinite(value) and value > 0 else 0.0
-    if danger is not None:
-        top = danger * DANGER_SPAN
-    elif alert is not None:
-        top = alert * ALERT_SPAN
-    else:
-        top = v * DANGER_SPAN  # no limits: the value fills 80 %
-    top = max(top, v)
-    return top if top > 0 else None
+def next_limit(value: Optional[float], warning: Optional[float],
+               alarm: Optional[float]) -> Tuple[Optional[str], Optional[float]]:
+    """The limit a rise would cross next: the lowest limit above the value,
+    or the top limit once the value has passed every one; (None, None) for
+    a band without limits."""
+    limits = [(n, v) for n, v in (("warning", warning), ("alarm", alarm)) if v is not None and v > 0]
+    if not limits:
+        return None, None
+    if value is not None and math.isfinite(value):
+        for name, limit in limits:
+            if value < limit:
+                return name, limit
+    return limits[-1]
 
 
-def bar(value: Optional[float], alert: Optional[float], danger: Optional[float], cells: int) -> str:
-    """`cells` characters: cell i stands for [i, i+1) * scale / cells. The
-    fill covers the value rounded to the nearest cell; each limit's mark sits
-    in the cell holding it, over the fill."""
-    out = [BAR_EMPTY] * cells
-    scale = bar_scale(value, alert, danger)
-    if scale is None or cells <= 0:
-        return "".join(out)
-    if value is not None and math.isfinite(value) and value > 0:
-        filled = min(cells, int(math.floor(value / scale * cells + 0.5)))
-        out[:filled] = [BAR_FILL] * filled
-    for limit, mark in ((alert, BAR_ALERT), (danger, BAR_DANGER)):
-        if limit is not None:
-            out[min(cells - 1, int(limit / scale * cells))] = mark
-    return "".join(out)
+def share_of_limit(value: Optional[float], warning: Optional[float], alarm: Optional[float]) -> str:
+    """'0.71 alarm': the value over its next limit, '-' when unknown."""
+    name, limit = next_limit(value, warning, alarm)
+    if name is None or limit is None or value is None or not math.isfinite(value):
+        return "-"
+    return f"{value / limit:.2f} {name}"
+
+
+def bar(value: Optional[float], warning: Optional[float], alarm: Optional[float], cells: int) -> str:
+    """`cells` characters in proportion to value / top limit, rounded to the
+    nearest cell; the last cell shows BAR_OVER once the value is past the
+    top limit. Blank without a value or without limits."""
+    top = alarm if alarm is not None else warning
+    if cells <= 0:
+        return ""
+    if top is None or top <= 0 or value is None or not math.isfinite(value) or value <= 0:
+        return BAR_EMPTY * cells
+    filled = min(cells, int(math.floor(value / top * cells + 0.5)))
+    out = BAR_FILL * filled + BAR_EMPTY * (cells - filled)
+    return out[:-1] + BAR_OVER if value > top else out
 
 
 def _fit(segments: Sequence[Segment], width: int, colour: bool) -> str:
@@ -226,21 +236,28 @@ def _header(snap: Snapshot) -> List[List[Segment]]:
 def _band_rows(snap: Snapshot, width: int) -> List[List[Segment]]:
     if not snap.bands:
         return [[("no bands configured", None)]]
-    name_w = min(16, max(len(b.name) for b in snap.bands))
-    ch_w = min(8, max(len(b.channel) for b in snap.bands))
-    unit_w = max(len(b.unit) for b in snap.bands)
-    fixed = name_w + 2 + ch_w + 2 + 2 + 2 + 7 + 1 + unit_w + 2 + 6
-    cells = min(BAR_MAX, width - fixed)
-    lines: List[List[Segment]] = [[(
-        f"bands: bar {BAR_FILL} value, {BAR_ALERT} alert, {BAR_DANGER} danger; "
-        f"full scale {DANGER_SPAN:g} x danger (or {ALERT_SPAN:g} x alert)", "dim")]]
+    name_w = min(12, max([4] + [len(b.name) for b in snap.bands]))
+    ch_w = min(5, max([2] + [len(b.channel) for b in snap.bands]))
+    unit_w = max([4] + [len(b.unit) for b in snap.bands])
+    # band ch value unit warning alarm share |bar| level; "warning" is the widest word
+    fixed = name_w + 1 + ch_w + 1 + 6 + 1 + unit_w + 1 + 7 + 1 + 7 + 1 + 13 + 1 + 7
+    share_w = 13 if width >= fixed else 0  # narrow: the share column goes first, the level word stays
+    cells = min(BAR_MAX, width - fixed - 3)
+
+    def columns(name: str, ch: str, value: str, unit: str, warning: str, alarm: str, share: str) -> str:
+        return (f"{_clip(name, name_w):<{name_w}} {_clip(ch, ch_w):<{ch_w}} {value:>6} {unit:<{unit_w}} "
+                f"{warning:>7} {alarm:>7} " + (f"{share:<{share_w}} " if share_w else ""))
+
+    head = columns("band", "ch", "value", "", "warning", "alarm", "x next limit")
+    if cells >= BAR_MIN:
+        head += f"{'|x top limit':<{cells + 2}} "
+    lines: List[List[Segment]] = [[(head + "level", "dim")]]
     for b in snap.bands:
-        row: List[Segment] = [(f"{_clip(b.name, name_w):<{name_w}}  {_clip(b.channel, ch_w):<{ch_w}}  ", None)]
+        row: List[Segment] = [(columns(b.name, b.channel, _num(b.value), b.unit, _num(b.warning), _num(b.alarm),
+                                       share_of_limit(b.value, b.warning, b.alarm)), None)]
         if cells >= BAR_MIN:
-            drawn = bar(b.value, b.alert, b.danger, cells)
-            filled = len(drawn) - len(drawn.lstrip(BAR_FILL + BAR_ALERT + BAR_DANGER))
-            row += [("[", None), (drawn[:filled], b.level), (drawn[filled:], None), ("]  ", None)]
-        row += [(f"{_num(b.value):>7} {b.unit:<{unit_w}}  ", None), (b.level, b.level)]
+            row.append((f"|{bar(b.value, b.warning, b.alarm, cells)}| ", None))
+        row.append((b.level, b.level))
         if b.note:
             row.append((f" ({b.note})", "dim"))
         lines.append(row)
@@ -487,7 +504,7 @@ class _Live:
             limits = dict(rule.limits)
             rows.append(BandRow(band.name, m.config.source.channels[ch], value,
                                 quantity_unit(band.quantity, m.config.source.unit), rule.level,
-                                limits.get("alert"), limits.get("danger"),
+                                limits.get("warning"), limits.get("alarm"),
                                 "learning baseline" if base.learning else ""))
         return rows
 
@@ -591,5 +608,5 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
     return 0
 
 
-__all__ = ["BandRow", "ChannelRow", "EventRow", "HealthRow", "Snapshot", "ViewSink", "bar", "bar_scale",
+__all__ = ["BandRow", "ChannelRow", "EventRow", "HealthRow", "Snapshot", "ViewSink", "bar", "next_limit", "share_of_limit",
            "plain_line", "render", "view"]

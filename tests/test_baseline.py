@@ -22,8 +22,8 @@ channel = "x"
 hz = [40.0, 60.0]
 quantity = "acceleration"
 baseline = 10.0
-alert_ratio = 2.0
-danger_ratio = 4.0
+warning_ratio = 2.0
+alarm_ratio = 4.0
 hysteresis = 0.1
 delay = 1.0
 """
@@ -49,12 +49,12 @@ def run(x, state_dir=None):
 
 
 def test_levels_at_multiples_of_the_learned_value():
-    # Learned 0.5 over the first 10 s; alert at 2 x 0.5 = 1.0, danger at 2.0.
+    # Learned 0.5 over the first 10 s; warning at 2 x 0.5 = 1.0, alarm at 2.0.
     monitor, events = run(scenario(40.0, [(20.0, 1.5), (30.0, 2.5)]))
     assert monitor.baselines[0].value == pytest.approx(0.5, rel=0.01)
-    assert [(e["level"], e["alert"], e["danger"]) for e in events] == [
-        ("alert", pytest.approx(1.0, rel=0.01), pytest.approx(2.0, rel=0.01)),
-        ("danger", pytest.approx(1.0, rel=0.01), pytest.approx(2.0, rel=0.01)),
+    assert [(e["level"], e["limits"]["warning"], e["limits"]["alarm"]) for e in events] == [
+        ("warning", pytest.approx(1.0, rel=0.01), pytest.approx(2.0, rel=0.01)),
+        ("alarm", pytest.approx(1.0, rel=0.01), pytest.approx(2.0, rel=0.01)),
     ]
 
 
@@ -68,10 +68,10 @@ def test_learned_value_survives_a_restart_and_reset_relearns(tmp_path):
     state = str(tmp_path)
     first, _ = run(scenario(12.0, []), state)
     assert first.baselines[0].value == pytest.approx(0.5, rel=0.01)
-    # Restarted on a machine now at 1.5: the stored 0.5 holds, so alert at once.
+    # Restarted on a machine now at 1.5: the stored 0.5 holds, so warning at once.
     second, events = run(scenario(5.0, [(0.0, 1.5)]), state)
     assert second.baselines[0].value == pytest.approx(0.5, rel=0.01)
-    assert [e["level"] for e in events] == ["alert"]
+    assert [e["level"] for e in events] == ["warning"]
     # reset-baseline forgets it: the next run learns 1.5 and raises nothing.
     config = tmp_path / "bandwatch.toml"
     config.write_text(BASE + BAND + f'\n[mqtt]\nqueue_dir = "{state}"\n')
@@ -86,11 +86,11 @@ def test_learned_value_survives_a_restart_and_reset_relearns(tmp_path):
 def test_config_rules_for_baseline_keys():
     from monitor.errors import ConfigError
 
-    with pytest.raises(ConfigError, match="alert_ratio: needs baseline"):
+    with pytest.raises(ConfigError, match="warning_ratio: needs baseline"):
         parse(BASE + BAND.replace("baseline = 10.0\n", ""))
-    with pytest.raises(ConfigError, match="baseline: needs alert_ratio or danger_ratio"):
-        parse(BASE + BAND.replace("alert_ratio = 2.0\n", "").replace("danger_ratio = 4.0\n", ""))
-    with pytest.raises(ConfigError, match="give alert or alert_ratio"):
-        parse(BASE + BAND.replace("alert_ratio = 2.0", "alert_ratio = 2.0\nalert = 1.0"))
-    with pytest.raises(ConfigError, match="danger_ratio: expected a ratio above alert_ratio"):
-        parse(BASE + BAND.replace("danger_ratio = 4.0", "danger_ratio = 1.5"))
+    with pytest.raises(ConfigError, match="baseline: needs warning_ratio or alarm_ratio"):
+        parse(BASE + BAND.replace("warning_ratio = 2.0\n", "").replace("alarm_ratio = 4.0\n", ""))
+    with pytest.raises(ConfigError, match="give warning or warning_ratio"):
+        parse(BASE + BAND.replace("warning_ratio = 2.0", "warning_ratio = 2.0\nwarning = 1.0"))
+    with pytest.raises(ConfigError, match="alarm_ratio: expected a ratio above warning_ratio"):
+        parse(BASE + BAND.replace("alarm_ratio = 4.0", "alarm_ratio = 1.5"))

@@ -21,8 +21,8 @@ name = "tone"
 channel = "x"
 hz = [40.0, 60.0]
 quantity = "acceleration"
-alert = 1.0
-danger = 3.0
+warning = 1.0
+alarm = 3.0
 delay = 0.0
 [capture]
 seconds = 4.0

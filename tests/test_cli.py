@@ -39,13 +39,15 @@ TIME_RE = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z$")
 COMMON_FIELDS = {"node", "time", "stream_s"}
 SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "channels", "bands"}
 SUMMARY_CHANNEL_FIELDS = {"rms", "peak", "crest", "kurtosis", "velocity_rms", "dominant_hz", "dominant_rms", "unit"}
-SUMMARY_BAND_FIELDS = {"name", "channel", "value", "unit", "level"}
+SUMMARY_BAND_FIELDS = {"name", "channel", "value", "unit", "level", "limits"}
+LIMITS_FIELDS = {"warning", "alarm"}
+HEALTH_CHECKS = {"stale", "gap", "corrupt", "clipping", "flatline", "nyquist", "rate", "queue", "config"}
 EVENT_FIELDS = COMMON_FIELDS | {
-    "id", "kind", "name", "channel", "level", "previous", "value", "alert", "danger", "unit", "quantity",
+    "id", "kind", "name", "channel", "level", "previous", "value", "limits", "unit", "quantity",
     "speed_hz", "dominant_hz",
 }
 STATUS_FIELDS = COMMON_FIELDS | {"state", "version", "since"}
-LEVELS_ROW_FIELDS = {"name", "channel", "level", "value"}
+LEVELS_ROW_FIELDS = {"name", "channel", "level", "value", "limits"}
 
 
 def bandwatch_env() -> dict:
@@ -122,7 +124,7 @@ def _numbers(row: list) -> list:
 SHAFT_HZ = DEMO_RPM / 60.0
 
 DEMO_BANDS = [
-    # name, edges in Hz at nominal speed, quantity, unit, alert, danger
+    # name, edges in Hz at nominal speed, quantity, unit, warning, alarm
     ("overall", (10.0, 1000.0), "velocity", "mm/s", 2.8, 4.5),
     ("1x", (0.8 * SHAFT_HZ, 1.2 * SHAFT_HZ), "velocity", "mm/s", 2.0, 3.5),
     ("2x", (1.8 * SHAFT_HZ, 2.2 * SHAFT_HZ), "velocity", "mm/s", 1.5, 3.0),
@@ -135,15 +137,15 @@ def test_check_exits_0_and_says_ok(check_output):
     assert str(DEMO_PATH) in check_output.splitlines()[0]
 
 
-@pytest.mark.parametrize("name, edges, quantity, unit, alert, danger", DEMO_BANDS, ids=[b[0] for b in DEMO_BANDS])
-def test_check_prints_each_band(check_output, name, edges, quantity, unit, alert, danger):
+@pytest.mark.parametrize("name, edges, quantity, unit, warning, alarm", DEMO_BANDS, ids=[b[0] for b in DEMO_BANDS])
+def test_check_prints_each_band(check_output, name, edges, quantity, unit, warning, alarm):
     row = _band_row(check_output, name)
     # Printed to 6 significant digits: 1x is 19.7333..29.6 Hz at 1480 rpm.
     assert _edges(row) == pytest.approx(edges, rel=1e-5)
     assert quantity in row
     assert unit in row
     numbers = _numbers(row)
-    assert alert in numbers and danger in numbers
+    assert warning in numbers and alarm in numbers
 
 
 def test_check_prints_the_1x_band_edges_at_nominal_speed(check_output):
@@ -286,7 +288,10 @@ def test_summary_fields_as_spec_section_4(run_60s):
         assert isinstance(s["bands"], list)
         for band in s["bands"]:
             assert set(band) == SUMMARY_BAND_FIELDS
-            assert band["level"] in ("normal", "alert", "danger")
+            assert band["level"] in ("normal", "warning", "alarm")
+            # The demo's limits, as config/demo.toml gives them.
+            limits = next(b for b in DEMO_TOML["band"] if b["name"] == band["name"])
+            assert band["limits"] == {"warning": limits["warning"], "alarm": limits["alarm"]}
             assert band["unit"] == ("g" if band["name"] == "high" else "mm/s")
         assert {(b["name"], b["channel"]) for b in s["bands"]} == band_rows
 
@@ -302,17 +307,20 @@ def test_events_within_60_s_with_every_field(run_60s):
         assert e["level"] != e["previous"]
         if e["kind"] == "health":  # e.g. stale, should the machine running the test stall
             assert e["level"] in ("normal", "fault") and e["previous"] in ("normal", "fault")
-            assert e["alert"] is None and e["danger"] is None
+            assert e["limits"] == {"warning": None, "alarm": None}
             continue
         assert e["name"] in ("overall", "1x", "2x", "high")
         assert e["channel"] in ("x", "y")
-        assert e["level"] in ("normal", "alert", "danger") and e["previous"] in ("normal", "alert", "danger")
+        assert e["level"] in ("normal", "warning", "alarm") and e["previous"] in ("normal", "warning", "alarm")
         assert e["quantity"] in ("acceleration", "velocity", "displacement")
         assert e["unit"] == ("g" if e["quantity"] == "acceleration" else "mm/s")
-        for field in ("value", "alert", "danger", "speed_hz", "dominant_hz"):
+        assert set(e["limits"]) == LIMITS_FIELDS
+        for field in ("value", "speed_hz", "dominant_hz"):
             assert isinstance(e[field], float), (field, e)
+        for field in LIMITS_FIELDS:
+            assert isinstance(e["limits"][field], float), (field, e)
         if e["level"] != "normal":
-            assert e["value"] >= e[e["level"]]  # raised: at or above its limit
+            assert e["value"] >= e["limits"][e["level"]]  # raised: at or above its limit
     # Ids count up by one from 1, over every kind of event.
     assert [e["id"] for e in events] == list(range(1, len(events) + 1))
 
@@ -337,6 +345,11 @@ def test_levels_payload_lists_every_band_and_health_check(run_60s):
         assert set(levels) == COMMON_FIELDS | {"levels"}
         for row in levels["levels"]:
             assert set(row) == LEVELS_ROW_FIELDS
+            assert set(row["limits"]) == LIMITS_FIELDS
+            if row["name"] in HEALTH_CHECKS:  # a health check has no band limits
+                assert row["limits"] == {"warning": None, "alarm": None}
+            else:
+                assert all(isinstance(v, float) for v in row["limits"].values()), row
         names = {r["name"] for r in levels["levels"]}
         assert {"overall", "1x", "2x", "high", "stale"} <= names
 

@@ -8,6 +8,8 @@ the line where the key is written (spec section 1: "Errors name the file, the
 key (and line where the parser gives it) and what was expected").
 """
 
+import subprocess
+import sys
 from pathlib import Path
 from typing import NamedTuple, Optional, Sequence, Tuple, Union
 
@@ -53,8 +55,8 @@ name = "1x"
 channel = "x"
 orders = [0.8, 1.2]
 quantity = "velocity"
-alert = 2.8
-danger = 4.5
+warning = 2.8
+alarm = 4.5
 
 [health]
 stale = 2.0
@@ -157,11 +159,11 @@ def test_demo_config_loads():
     overall, one_x, two_x, high = config.bands
     assert overall.channels == ("x", "y")  # no channel given: every channel
     assert overall.hz == (10.0, 1000.0) and overall.orders is None
-    assert (overall.alert, overall.danger, overall.hysteresis, overall.delay) == (2.8, 4.5, 0.1, 3.0)
+    assert (overall.warning, overall.alarm, overall.hysteresis, overall.delay) == (2.8, 4.5, 0.1, 3.0)
     assert one_x.channels == ("x",) and one_x.orders == (0.8, 1.2) and one_x.hz is None
-    assert (one_x.quantity, one_x.alert, one_x.danger, one_x.delay) == ("velocity", 2.0, 3.5, 2.0)
+    assert (one_x.quantity, one_x.warning, one_x.alarm, one_x.delay) == ("velocity", 2.0, 3.5, 2.0)
     assert two_x.orders == (1.8, 2.2)
-    assert (high.quantity, high.hz, high.alert, high.danger) == ("acceleration", (1000.0, 2500.0), 0.5, 1.0)
+    assert (high.quantity, high.hz, high.warning, high.alarm) == ("acceleration", (1000.0, 2500.0), 0.5, 1.0)
     assert config.health.stale == 2.0
     assert config.mqtt is None  # no [mqtt]: JSON lines on stdout
 
@@ -201,7 +203,7 @@ def test_defaults_documented_in_config_py(tmp_path):
     (band,) = config.bands
     assert band.channels == ("a", "b", "c")  # default: every source channel
     assert (band.hysteresis, band.delay) == (0.1, 3.0)
-    assert band.alert is None and band.danger is None
+    assert band.warning is None and band.alarm is None
     assert config.health.stale == 2.0
     assert (config.speed.rpm, config.speed.track, config.speed.search_hz) == (None, False, None)
     assert config.mqtt is None
@@ -428,13 +430,13 @@ CASES = {
     "band-quantity-unknown": Case(demo(('quantity = "acceleration"', 'quantity = "speed"')), "band[4].quantity",
                                   'quantity = "speed"', ["'speed'", "'acceleration'", "'velocity'",
                                                          "'displacement'"]),
-    "band-alert-above-danger": Case(demo(("alert = 0.5", "alert = 1.5")), "band[4].danger", ("danger = ", 4),
-                                    ["1.0", "above alert (1.5)"]),
-    "band-alert-equals-danger": Case(demo(("alert = 0.5", "alert = 1.0")), "band[4].danger", ("danger = ", 4),
-                                     ["1.0", "above alert (1)"]),
-    "band-alert-negative": Case(demo(("alert = 0.5", "alert = -0.5")), "band[4].alert", "alert = -0.5",
+    "band-warning-above-alarm": Case(demo(("warning = 0.5", "warning = 1.5")), "band[4].alarm", ("alarm = ", 4),
+                                    ["1.0", "above warning (1.5)"]),
+    "band-warning-equals-alarm": Case(demo(("warning = 0.5", "warning = 1.0")), "band[4].alarm", ("alarm = ", 4),
+                                     ["1.0", "above warning (1)"]),
+    "band-warning-negative": Case(demo(("warning = 0.5", "warning = -0.5")), "band[4].warning", "warning = -0.5",
                                 ["-0.5", "> 0"]),
-    "band-alert-string": Case(demo(("alert = 0.5", 'alert = "0.5"')), "band[4].alert", 'alert = "0.5"',
+    "band-warning-string": Case(demo(("warning = 0.5", 'warning = "0.5"')), "band[4].warning", 'warning = "0.5"',
                               ["'0.5'", "a number"]),
     "band-hysteresis-one": Case(demo(("hysteresis = 0.1", "hysteresis = 1.0")), "band[1].hysteresis",
                                 "hysteresis", ["1.0", "<= 0.99"]),
@@ -502,7 +504,7 @@ bearing = "de"
 defect = "bpfo"
 spectrum = "envelope"
 quantity = "acceleration"
-alert = 0.05
+warning = 0.05
 """
 MORE_CASES = {
     "health-corrupt-above-one": Case(demo(("stale = 2.0", "stale = 2.0\ncorrupt = 1.5")), "health.corrupt",
@@ -524,21 +526,50 @@ MORE_CASES = {
                                    "band[5].defect", 'defect = "outer"', ["'outer'", "'bpfo'"]),
     "bearing-unknown-name": Case(demo() + BEARING.replace('bearing = "de"', 'bearing = "nde"'),
                                  "band[5].bearing", 'bearing = "nde"', ["'nde'", "de"]),
-    "envelope-quantity-velocity": Case(demo() + BEARING.replace('quantity = "acceleration"\nalert = 0.05',
-                                                                 'quantity = "velocity"\nalert = 0.05'),
+    "envelope-quantity-velocity": Case(demo() + BEARING.replace('quantity = "acceleration"\nwarning = 0.05',
+                                                                 'quantity = "velocity"\nwarning = 0.05'),
                                        "band[5].quantity", ('quantity = "velocity"', 4), ["'velocity'", "envelope"]),
-    "severity-unknown": Case(demo(('hz = [10.0, 1000.0]\nquantity = "velocity"\nalert = 2.8\ndanger = 4.5',
+    "severity-unknown": Case(demo(('hz = [10.0, 1000.0]\nquantity = "velocity"\nwarning = 2.8\nalarm = 4.5',
                                    'severity = "group3-rigid"')), "band[1].severity", "severity",
                              ["'group3-rigid'", "'group2-rigid'"]),
     "severity-with-limits": Case(demo(('hz = [10.0, 1000.0]\nquantity = "velocity"\n',
-                                       'severity = "group2-rigid"\n')), "band[1].alert", ("alert = ", 1),
-                                 ["severity", "leave alert out"]),
+                                       'severity = "group2-rigid"\n')), "band[1].warning", ("warning = ", 1),
+                                 ["severity", "leave warning out"]),
     "baseline-without-ratio": Case(demo(("delay = 2.0", "delay = 2.0\nbaseline = 600.0")), "band[2].baseline",
-                                   "baseline = 600.0", ["needs alert_ratio or danger_ratio"]),
+                                   "baseline = 600.0", ["needs warning_ratio or alarm_ratio"]),
     "mqtt-cert-without-tls": Case(demo() + '\n[mqtt]\ncert_file = "/etc/bandwatch/client.pem"\n',
                                   "mqtt.cert_file", "cert_file", ["client.pem", "tls = false"]),
 }
 CASES.update(MORE_CASES)
+
+# The first release's limit keys: refused with the new name, never read as
+# aliases (a choice of this project, see CHANGELOG.md).
+RENAMED_CASES = {
+    "renamed-alert": Case(demo(("warning = 2.8", "alert = 2.8")), "band[1].alert", "alert = 2.8",
+                          ["renamed; use warning"]),
+    "renamed-danger": Case(demo(("alarm = 4.5", "danger = 4.5")), "band[1].danger", "danger = 4.5",
+                           ["renamed; use alarm"]),
+    "renamed-alert-ratio": Case(demo(("warning = 2.8\nalarm = 4.5", "baseline = 60.0\nalert_ratio = 2.0")),
+                                "band[1].alert_ratio", "alert_ratio", ["renamed; use warning_ratio"]),
+    "renamed-danger-ratio": Case(demo(("warning = 2.8\nalarm = 4.5", "baseline = 60.0\ndanger_ratio = 4.0")),
+                                 "band[1].danger_ratio", "danger_ratio", ["renamed; use alarm_ratio"]),
+    "renamed-health-alias": Case(demo(("[health]\n", "[health]\nalias = 0.3\n")), "health.alias", "alias = 0.3",
+                                 ["renamed; use nyquist"]),
+}
+CASES.update(RENAMED_CASES)
+
+
+@pytest.mark.parametrize("command", ["check", "run"])
+@pytest.mark.parametrize("old", ["alert", "danger", "alert_ratio", "danger_ratio"])
+def test_old_limit_keys_are_refused_by_check_and_run_with_exit_2(tmp_path, command, old):
+    case = RENAMED_CASES["renamed-" + old.replace("_", "-")]
+    path = write(tmp_path, case.text)
+    done = subprocess.run([sys.executable, "-m", "monitor", command, "-c", str(path)], cwd=str(ROOT),
+                          stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, timeout=60)
+    assert done.returncode == 2, done.stderr
+    new = {"alert": "warning", "danger": "alarm"}[old.split("_")[0]] + ("_ratio" if "ratio" in old else "")
+    assert f"band[1].{old}: renamed; use {new}" in done.stderr
+    assert done.stdout == ""  # nothing started, nothing published
 
 
 def _params():

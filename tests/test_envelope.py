@@ -69,7 +69,7 @@ bearing = "de"
 defect = "bpfo"
 spectrum = "envelope"
 quantity = "acceleration"
-alert = 0.02
+warning = 0.02
 delay = 1.0
 [[band]]
 name = "outer-raw"
@@ -104,7 +104,7 @@ def test_outer_race_fault_shows_in_the_envelope_band():
     monitor = Monitor(config, ArraySource(config.source, x), sink)
     monitor.run()
     events = [e for e in sink.of("event") if e["kind"] == "band"]
-    assert [(e["name"], e["level"]) for e in events] == [("outer-env", "alert")]
+    assert [(e["name"], e["level"]) for e in events] == [("outer-env", "warning")]
     assert events[0]["stream_s"] > 10.0  # only once the impacts started
     bands = {b.name: b.value for b in monitor.latest.bands}
     healthy = Monitor(config, ArraySource(config.source, outer_race_fault(8.0, 0.0)), ListSink())

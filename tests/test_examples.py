@@ -45,7 +45,7 @@ def test_overall_velocity_limits_are_iso_zone_boundaries(path):
         text = fh.read()
     group = "group 1" if "group 1" in text else "group 2"
     support = "flexible" if "flexible" in text else "rigid"
-    assert (band.alert, band.danger) == ISO_10816_3[(group, support)]
+    assert (band.warning, band.alarm) == ISO_10816_3[(group, support)]
 
 
 @pytest.mark.parametrize("preset", sorted(ISO_10816_3))
@@ -72,4 +72,4 @@ severity = "{name}"
     slow = parse(text.format(rpm=450.0)).bands[0]
     assert fast.hz == (10.0, 1000.0) and slow.hz == (2.0, 1000.0)
     assert fast.quantity == "velocity"
-    assert (fast.alert, fast.danger) == ISO_10816_3[preset]
+    assert (fast.warning, fast.alarm) == ISO_10816_3[preset]

@@ -110,12 +110,12 @@ def test_alias_guard_fires_when_energy_sits_near_nyquist():
     high = np.sin(2 * np.pi * 0.54 * FS * t)  # shows at 460 Hz, inside the top 10 %
     spec = stage.push(np.vstack([low, high]) + 0.001 * np.random.default_rng(1).normal(size=(2, size)))
     assert abs(spec.freqs[np.argmax(spec.psd[0])] - 80.0) <= spec.bin_hz
-    h = health(alias=0.2)
+    h = health(nyquist=0.2)
     out = []
     for k in range(10):
         out += names(h.on_spectrum(spec, k * 0.5))
-    assert out == [("alias", "y", "fault")]  # after its 2 s delay
-    assert h.alias[0].value < 0.01 and h.alias[1].value > 0.9
+    assert out == [("nyquist", "y", "fault")]  # after its 2 s delay
+    assert h.nyquist[0].value < 0.01 and h.nyquist[1].value > 0.9
 
 
 def test_stale_after_its_seconds():
@@ -130,7 +130,7 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("alias", "x"), ("alias", "y"), ("queue", None), ("config", None),
+        ("nyquist", "x"), ("nyquist", "y"), ("queue", None), ("config", None),
     }
 
 

@@ -182,8 +182,8 @@ name = "tone"
 channel = "x"
 hz = [40.0, 60.0]
 quantity = "acceleration"
-alert = 1.0
-danger = 3.0
+warning = 1.0
+alarm = 3.0
 hysteresis = 0.2
 delay = 1.0
 """
@@ -220,7 +220,7 @@ def expected_events(x, config, limit_rows):
             while new > 0 and below[new] is not None and t - below[new] >= 1.0 - 1e-9:
                 new -= 1
         if new != level:
-            out.append((round(t, 6), ["normal", "alert", "danger"][new]))
+            out.append((round(t, 6), ["normal", "warning", "alarm"][new]))
             level = new
     return out
 
@@ -237,9 +237,9 @@ def test_events_in_a_scenario_match_independent_computation():
     events = [e for e in sink.of("event") if e["kind"] == "band"]
     expected = expected_events(x, config, {1: 1.0, 2: 3.0})
     assert [(e["stream_s"], e["level"]) for e in events] == expected
-    # Falling from 4 to 0.2, the 2 s average passes below danger's clear
-    # point a little before alert's, so danger steps down through alert.
-    assert [e["level"] for e in events] == ["alert", "danger", "alert", "normal"]
+    # Falling from 4 to 0.2, the 2 s average passes below alarm's clear
+    # point a little before warning's, so alarm steps down through warning.
+    assert [e["level"] for e in events] == ["warning", "alarm", "warning", "normal"]
     # The silent y channel raises its flatline fault once 5 s (the default)
     # have passed, at the end of the block (512 samples) that completes them.
     health = [e for e in sink.of("event") if e["kind"] == "health"]
@@ -249,7 +249,7 @@ def test_events_in_a_scenario_match_independent_computation():
     assert sorted(e["id"] for e in sink.of("event")) == [1, 2, 3, 4, 5]
     first = events[0]
     assert first["previous"] == "normal" and first["kind"] == "band" and first["channel"] == "x"
-    assert (first["alert"], first["danger"], first["unit"], first["quantity"]) == (1.0, 3.0, "m/s2", "acceleration")
+    assert (first["limits"]["warning"], first["limits"]["alarm"], first["unit"], first["quantity"]) == (1.0, 3.0, "m/s2", "acceleration")
     assert first["dominant_hz"] == pytest.approx(50.0, abs=0.05)
     # A levels snapshot follows each event.
     order = [s for s, _ in sink.messages]
@@ -312,7 +312,7 @@ def test_stale_fault_raised_and_cleared():
         ("stale", "health", "normal", "fault"),
     ]
     # Health events carry what they measured and null limits (spec section 4).
-    assert events[0]["value"] >= 2.0 and events[0]["alert"] is None and events[0]["danger"] is None
+    assert events[0]["value"] >= 2.0 and events[0]["limits"] == {"warning": None, "alarm": None}
 
 
 def test_payloads_are_json_with_common_fields():

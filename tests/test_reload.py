@@ -23,8 +23,8 @@ name = "tone"
 channel = "x"
 hz = [40.0, 60.0]
 quantity = "acceleration"
-alert = {alert}
-danger = {danger}
+warning = {warning}
+alarm = {alarm}
 hysteresis = 0.1
 delay = 0.0
 """
@@ -75,17 +75,17 @@ def run_with_reloads(first, reloads, seconds=20.0):
 
 
 def band_events(sink):
-    return [(e["name"], e["previous"], e["level"], e["alert"], e["danger"]) for e in sink.of("event")
+    return [(e["name"], e["previous"], e["level"], e["limits"]["warning"], e["limits"]["alarm"]) for e in sink.of("event")
             if e["kind"] == "band"]
 
 
 def test_good_reload_takes_new_limits_at_the_next_result_and_keeps_the_ring():
-    first = parse(BASE + BAND.format(alert=2.0, danger=3.0))
-    second = parse(BASE + BAND.format(alert=0.5, danger=3.0))
+    first = parse(BASE + BAND.format(warning=2.0, alarm=3.0))
+    second = parse(BASE + BAND.format(warning=0.5, alarm=3.0))
     monitor, sink = run_with_reloads(first, {40: second})
-    # Before: 1.0 RMS is under alert 2.0. After the reload at block 40 (5 s),
-    # the next result sees alert 0.5: one event, carrying the new limits.
-    assert band_events(sink) == [("tone", "normal", "alert", 0.5, 3.0)]
+    # Before: 1.0 RMS is under warning 2.0. After the reload at block 40 (5 s),
+    # the next result sees warning 0.5: one event, carrying the new limits.
+    assert band_events(sink) == [("tone", "normal", "warning", 0.5, 3.0)]
     event = sink.of("event")[0]
     hop_s = first.spectrum.hop / FS
     assert 40 * 256 / FS <= event["stream_s"] <= 41 * 256 / FS + hop_s
@@ -96,25 +96,25 @@ def test_good_reload_takes_new_limits_at_the_next_result_and_keeps_the_ring():
 
 
 def test_raised_level_survives_a_reload_that_keeps_the_band():
-    first = parse(BASE + BAND.format(alert=0.5, danger=3.0))
-    again = parse(BASE + BAND.format(alert=0.6, danger=3.0))
+    first = parse(BASE + BAND.format(warning=0.5, alarm=3.0))
+    again = parse(BASE + BAND.format(warning=0.6, alarm=3.0))
     _, sink = run_with_reloads(first, {40: again})
     # Raised once at the start; the reload with a limit still exceeded gives no event.
-    assert band_events(sink) == [("tone", "normal", "alert", 0.5, 3.0)]
+    assert band_events(sink) == [("tone", "normal", "warning", 0.5, 3.0)]
 
 
 def test_limits_raised_above_the_value_clear_the_level_with_one_event():
-    first = parse(BASE + BAND.format(alert=0.5, danger=0.8))
-    relaxed = parse(BASE + BAND.format(alert=2.0, danger=3.0))
+    first = parse(BASE + BAND.format(warning=0.5, alarm=0.8))
+    relaxed = parse(BASE + BAND.format(warning=2.0, alarm=3.0))
     _, sink = run_with_reloads(first, {40: relaxed})
-    # From danger straight to normal: at most one event for the reload.
-    assert band_events(sink) == [("tone", "normal", "danger", 0.5, 0.8), ("tone", "danger", "normal", 2.0, 3.0)]
+    # From alarm straight to normal: at most one event for the reload.
+    assert band_events(sink) == [("tone", "normal", "alarm", 0.5, 0.8), ("tone", "alarm", "normal", 2.0, 3.0)]
 
 
 def test_bad_reload_is_refused_with_a_config_fault_and_the_old_config_runs_on():
-    first = parse(BASE + BAND.format(alert=2.0, danger=3.0))
-    bad = ConfigError("bandwatch.toml", "band[1].alert", "expected a number > 0, got -1", 12)
-    good = parse(BASE + BAND.format(alert=0.5, danger=3.0))
+    first = parse(BASE + BAND.format(warning=2.0, alarm=3.0))
+    bad = ConfigError("bandwatch.toml", "band[1].warning", "expected a number > 0, got -1", 12)
+    good = parse(BASE + BAND.format(warning=0.5, alarm=3.0))
     monitor, sink = run_with_reloads(first, {20: bad, 60: good})
     health = [(e["name"], e["level"]) for e in sink.of("event") if e["kind"] == "health"]
     assert health == [("config", "fault"), ("config", "normal")]
@@ -124,22 +124,22 @@ def test_bad_reload_is_refused_with_a_config_fault_and_the_old_config_runs_on():
 
 
 def test_partial_reload_applies_what_it_can_and_names_the_rest(caplog):
-    first = parse(BASE + BAND.format(alert=2.0, danger=3.0))
+    first = parse(BASE + BAND.format(warning=2.0, alarm=3.0))
     changed_source = parse(BASE.replace('channels = ["x", "y"]', 'channels = ["x", "z"]')
-                           + BAND.format(alert=0.5, danger=3.0))
+                           + BAND.format(warning=0.5, alarm=3.0))
     with caplog.at_level("WARNING", logger="bandwatch.pipeline"):
         monitor, sink = run_with_reloads(first, {40: changed_source})
     assert any("[source] settings changed" in r.getMessage() for r in caplog.records)
     assert monitor.config.source.channels == ("x", "y")  # kept
-    assert band_events(sink) == [("tone", "normal", "alert", 0.5, 3.0)]  # applied
+    assert band_events(sink) == [("tone", "normal", "warning", 0.5, 3.0)]  # applied
 
 
 def test_sighup_reloads_a_running_service(tmp_path):
     with open(os.path.join(ROOT, "config", "demo.toml"), encoding="utf-8") as fh:
         text = fh.read()
     path = tmp_path / "bandwatch.toml"
-    quiet = re.sub(r"alert = [0-9.]+", "alert = 900.0", text)
-    quiet = re.sub(r"danger = [0-9.]+", "danger = 999.0", quiet)
+    quiet = re.sub(r"warning = [0-9.]+", "warning = 900.0", text)
+    quiet = re.sub(r"alarm = [0-9.]+", "alarm = 999.0", quiet)
     path.write_text(quiet)
     load(str(path))
     proc = subprocess.Popen([sys.executable, "-m", "monitor", "run", "-c", str(path)], cwd=ROOT,

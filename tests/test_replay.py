@@ -38,7 +38,7 @@ from monitor.sources.memory import ArraySource
 ROOT = Path(__file__).resolve().parent.parent
 # The event payload's fields, spec section 4.
 EVENT_FIELDS = {"node", "time", "stream_s", "id", "kind", "name", "channel", "level", "previous", "value",
-                "alert", "danger", "unit", "quantity", "speed_hz", "dominant_hz"}
+                "limits", "unit", "quantity", "speed_hz", "dominant_hz"}
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
 
 SIM = """
@@ -67,16 +67,16 @@ search_hz = [20.0, 30.0]
 name = "overall"
 hz = [10.0, 1000.0]
 quantity = "velocity"
-alert = 2.5
-danger = 4.5
+warning = 2.5
+alarm = 4.5
 delay = 0.5
 [[band]]
 name = "1x"
 channel = "x"
 orders = [0.8, 1.2]
 quantity = "velocity"
-alert = 2.0
-danger = 4.0
+warning = 2.0
+alarm = 4.0
 delay = 0.5
 [[band]]
 name = "2x"
@@ -104,8 +104,8 @@ averages = 3
 name = "tone"
 hz = [40.0, 60.0]
 quantity = "acceleration"
-alert = 1.0
-danger = 3.0
+warning = 1.0
+alarm = 3.0
 hysteresis = 0.2
 delay = 1.0
 {extra}
@@ -224,11 +224,11 @@ def test_replay_gives_the_events_of_the_pipeline_run_on_the_simulator(sim):
     _, _, first = sim
     replayed = events_of(first.stdout)
     live = live_events()
-    assert len(replayed) >= 4, "the scenario should raise alert and danger levels within 5 s"
+    assert len(replayed) >= 4, "the scenario should raise warning and alarm levels within 5 s"
     # The same events at the same stream times, counted from samples; values
     # agree to the float32 precision of the recording (6 significant digits
     # printed, so within a few units of the 6th).
-    key = ("id", "kind", "name", "channel", "level", "previous", "stream_s", "alert", "danger", "unit", "quantity")
+    key = ("id", "kind", "name", "channel", "level", "previous", "stream_s", "limits", "unit", "quantity")
     assert [tuple(e[k] for k in key) for e in replayed] == [tuple(e[k] for k in key) for e in live]
     for r, e in zip(replayed, live):
         for field in ("value", "speed_hz", "dominant_hz"):
@@ -394,7 +394,7 @@ def expected_events(times, values, limits=(1.0, 3.0), hysteresis=0.2, delay=1.0)
             while new > 0 and below[new - 1] is not None and t - below[new - 1] >= delay - 1e-9:
                 new -= 1
         if new != level:
-            out.append((round(t, 6), ("normal", "alert", "danger")[new]))
+            out.append((round(t, 6), ("normal", "warning", "alarm")[new]))
             level = new
     return out
 
@@ -419,7 +419,7 @@ def test_scenario_events_come_at_the_expected_stream_times(step):
     expected = expected_events(times, values)
     got = [(e["stream_s"], e["level"]) for e in events_of(result.stdout) if e["kind"] == "band"]
     assert got == expected
-    assert [level for _, level in got] == ["alert", "danger", "alert", "normal"]
+    assert [level for _, level in got] == ["warning", "alarm", "warning", "normal"]
 
 
 def test_table_has_the_maximum_and_time_above_each_limit(step):
@@ -427,14 +427,14 @@ def test_table_has_the_maximum_and_time_above_each_limit(step):
     times, values = welch_results(x)
     hop_s = 256 / FS
     row = table_rows(result.stderr)[("tone", "x")]
-    name, channel, unit, alert, danger, peak, peak_at, above_alert, above_danger, events = row
-    assert (unit, alert, danger) == ("m/s2", "1", "3")
+    name, channel, unit, warning, alarm, peak, peak_at, above_warning, above_alarm, events = row
+    assert (unit, warning, alarm) == ("m/s2", "1", "3")
     assert float(peak) == pytest.approx(values.max(), rel=1e-5)
     assert float(peak_at) == pytest.approx(times[values.argmax()], abs=1e-3)
     # Time above a limit: hop durations of the results at or above it.
-    assert float(above_alert) == pytest.approx(hop_s * np.count_nonzero(values >= 1.0), abs=1e-3)
-    assert float(above_danger) == pytest.approx(hop_s * np.count_nonzero(values >= 3.0), abs=1e-3)
-    assert 9.0 < float(above_danger) < 11.0  # about the 10 s at RMS 4
+    assert float(above_warning) == pytest.approx(hop_s * np.count_nonzero(values >= 1.0), abs=1e-3)
+    assert float(above_alarm) == pytest.approx(hop_s * np.count_nonzero(values >= 3.0), abs=1e-3)
+    assert 9.0 < float(above_alarm) < 11.0  # about the 10 s at RMS 4
     assert int(events) == 4
     assert f"{len(times)} results" in result.stderr
 

@@ -20,62 +20,62 @@ def drive(machine, values, step=1.0):
     return changes
 
 
-def band(delay=2.0, hysteresis=0.1, alert=10.0, danger=20.0):
-    return LevelMachine([("alert", alert), ("danger", danger)], hysteresis, delay)
+def band(delay=2.0, hysteresis=0.1, warning=10.0, alarm=20.0):
+    return LevelMachine([("warning", warning), ("alarm", alarm)], hysteresis, delay)
 
 
 def test_delay_must_hold_before_raising():
     # Above the limit at t=2,3,4: held 2 s at t=4.
-    assert drive(band(), [5, 5, 11, 11, 11, 11]) == [(4.0, "normal", "alert")]
+    assert drive(band(), [5, 5, 11, 11, 11, 11]) == [(4.0, "normal", "warning")]
 
 
 def test_a_dip_restarts_the_delay():
-    assert drive(band(), [11, 11, 9, 11, 11, 11]) == [(5.0, "normal", "alert")]
+    assert drive(band(), [11, 11, 9, 11, 11, 11]) == [(5.0, "normal", "warning")]
 
 
 def test_at_the_limit_counts_as_above():
-    assert drive(band(delay=0.0), [10.0]) == [(0.0, "normal", "alert")]
+    assert drive(band(delay=0.0), [10.0]) == [(0.0, "normal", "warning")]
 
 
 def test_hysteresis_holds_the_level_until_clearly_below():
     # Clears below 10 * (1 - 0.1) = 9; 9.5 is not enough.
     m = band(delay=0.0)
-    assert drive(m, [11, 9.5, 9.5, 9.0, 8.9]) == [(0.0, "normal", "alert"), (4.0, "alert", "normal")]
+    assert drive(m, [11, 9.5, 9.5, 9.0, 8.9]) == [(0.0, "normal", "warning"), (4.0, "warning", "normal")]
 
 
 def test_two_levels_in_turn():
     m = band(delay=1.0)
-    assert drive(m, [12, 12, 25, 25, 25]) == [(1.0, "normal", "alert"), (3.0, "alert", "danger")]
+    assert drive(m, [12, 12, 25, 25, 25]) == [(1.0, "normal", "warning"), (3.0, "warning", "alarm")]
 
 
-def test_straight_to_danger_gives_one_event():
-    assert drive(band(delay=1.0), [25, 25, 25]) == [(1.0, "normal", "danger")]
+def test_straight_to_alarm_gives_one_event():
+    assert drive(band(delay=1.0), [25, 25, 25]) == [(1.0, "normal", "alarm")]
 
 
-def test_direct_drop_from_danger_to_normal():
+def test_direct_drop_from_alarm_to_normal():
     m = band(delay=1.0)
     changes = drive(m, [25, 25, 1, 1, 1])
-    assert changes == [(1.0, "normal", "danger"), (3.0, "danger", "normal")]
+    assert changes == [(1.0, "normal", "alarm"), (3.0, "alarm", "normal")]
 
 
-def test_drop_from_danger_to_alert():
+def test_drop_from_alarm_to_warning():
     m = band(delay=1.0)
-    # 15 is below danger * 0.9 = 18 but not below alert * 0.9 = 9.
-    assert drive(m, [25, 25, 15, 15, 15]) == [(1.0, "normal", "danger"), (3.0, "danger", "alert")]
+    # 15 is below alarm * 0.9 = 18 but not below warning * 0.9 = 9.
+    assert drive(m, [25, 25, 15, 15, 15]) == [(1.0, "normal", "alarm"), (3.0, "alarm", "warning")]
 
 
 def test_unmeasurable_values_change_nothing_and_restart_timers():
     m = band(delay=2.0)
-    assert drive(m, [11, 11, None, 11, 11, math.nan, 11, 11, 11]) == [(8.0, "normal", "alert")]
+    assert drive(m, [11, 11, None, 11, 11, math.nan, 11, 11, 11]) == [(8.0, "normal", "warning")]
 
 
 def test_only_one_limit():
-    m = LevelMachine([("alert", None), ("danger", 4.5)], 0.1, 0.0)
-    assert drive(m, [5.0, 1.0]) == [(0.0, "normal", "danger"), (1.0, "danger", "normal")]
+    m = LevelMachine([("warning", None), ("alarm", 4.5)], 0.1, 0.0)
+    assert drive(m, [5.0, 1.0]) == [(0.0, "normal", "alarm"), (1.0, "alarm", "normal")]
 
 
 def test_no_limits_never_changes():
-    m = LevelMachine([("alert", None), ("danger", None)], 0.1, 0.0)
+    m = LevelMachine([("warning", None), ("alarm", None)], 0.1, 0.0)
     assert drive(m, [1e9, 0, 1e9]) == []
     assert m.level == "normal"
 

@@ -103,5 +103,5 @@ def test_each_bound_breaks_on_growth(change, broken):
 
 def test_an_unscheduled_event_breaks_the_schedule_bound():
     soak = _load_soak()
-    verdicts = _verdicts(soak, _snapshot(soak), events={("overall", "alert"): 1})
+    verdicts = _verdicts(soak, _snapshot(soak), events={("overall", "warning"): 1})
     assert verdicts["schedule"] is False

@@ -25,6 +25,8 @@ from monitor.view import (
     Snapshot,
     ViewSink,
     bar,
+    next_limit,
+    share_of_limit,
     plain_line,
     render,
 )
@@ -45,7 +47,7 @@ ESC = "\x1b"
 HOME, CLEAR_EOL, CLEAR_EOS = "\x1b[H", "\x1b[K", "\x1b[J"
 HIDE_CURSOR, SHOW_CURSOR = "\x1b[?25l", "\x1b[?25h"
 CSI_RE = re.compile(r"\x1b\[[0-9;?]*[A-Za-z]")
-LEVEL_WORDS = ("normal", "alert", "danger")
+LEVEL_WORDS = ("normal", "warning", "alarm")
 
 
 def visible(text: str) -> str:
@@ -53,40 +55,44 @@ def visible(text: str) -> str:
 
 
 # ---------------------------------------------------------------------------
-# the bar, worked by hand from the README's scale rule: full scale is
-# max(danger * 1.25, value), or max(alert * 1.6, value) without danger; cell i
-# stands for [i, i+1) * scale / cells, the fill is the value rounded to the
-# nearest cell, a limit's mark sits in the cell that holds it.
+# the bar and the share column, worked by hand from the README's rule (a
+# choice of this project): the bar is value / top limit (alarm, or warning
+# without alarm) in cells rounded to the nearest cell, the last cell '>' past
+# the top limit; the share is the value over the next limit up.
 
 
 def test_bar_with_both_limits():
     # Limits 2.8 / 4.5 mm/s (ISO 10816-3 group 2, rigid: B/C and C/D, from
-    # memory). Scale 4.5 * 1.25 = 5.625; 42 cells.
-    # value 2.0: 2.0 / 5.625 * 42 = 14.93 -> 15 cells filled
-    # alert 2.8: 2.8 / 5.625 * 42 = 20.91 -> cell 20
-    # danger 4.5: 4.5 / 5.625 * 42 = 33.6 -> cell 33
-    expected = "#" * 15 + "." * 5 + "A" + "." * 12 + "D" + "." * 8
-    assert len(expected) == 42
-    assert bar(2.0, 2.8, 4.5, 42) == expected
+    # memory). value 2.0: 2.0 / 4.5 * 42 = 18.67 -> 19 cells filled.
+    assert bar(2.0, 2.8, 4.5, 42) == "=" * 19 + " " * 23
 
 
-def test_bar_value_beyond_the_scale_stretches_it():
-    # value 7.0 > 5.625: scale 7.0, all 42 cells filled;
-    # alert 2.8 / 7 * 42 = 16.8 -> cell 16; danger 4.5 / 7 * 42 = 27.0 -> cell 27
-    expected = "#" * 16 + "A" + "#" * 10 + "D" + "#" * 14
-    assert len(expected) == 42
-    assert bar(7.0, 2.8, 4.5, 42) == expected
+def test_bar_past_the_top_limit_is_full_and_says_so():
+    assert bar(7.0, 2.8, 4.5, 42) == "=" * 41 + ">"
+    # Exactly at the limit: full, not past it.
+    assert bar(4.5, 2.8, 4.5, 10) == "=" * 10
 
 
-def test_bar_with_alert_only():
-    # scale 2.0 * 1.6 = 3.2; 32 cells: value 1.0 -> 10 cells, alert -> cell 20
-    expected = "#" * 10 + "." * 10 + "A" + "." * 11
-    assert bar(1.0, 2.0, None, 32) == expected
+def test_bar_with_warning_only():
+    # 1.0 / 2.0 * 32 = 16 cells
+    assert bar(1.0, 2.0, None, 32) == "=" * 16 + " " * 16
 
 
-def test_bar_without_a_value_shows_only_the_limits():
-    # danger-only band, value unknown: scale 1.0 * 1.25; danger at 0.8 * 20 = 16
-    assert bar(None, None, 1.0, 20) == "." * 16 + "D" + "." * 3
+def test_bar_without_a_value_or_limits_is_blank_and_has_no_marks():
+    assert bar(None, None, 1.0, 20) == " " * 20
+    assert bar(3.0, None, None, 20) == " " * 20
+    # No letters anywhere in a bar: it is a plain proportion.
+    assert set(bar(3.0, 2.8, 4.5, 30)) <= {"=", " ", ">"}
+
+
+def test_share_of_the_next_limit():
+    assert share_of_limit(2.0, 2.8, 4.5) == "0.71 warning"  # 2.0 / 2.8 = 0.714
+    assert share_of_limit(3.2, 2.8, 4.5) == "0.71 alarm"  # past warning: 3.2 / 4.5 = 0.711
+    assert share_of_limit(9.0, 2.8, 4.5) == "2.00 alarm"  # past both: the top limit
+    assert share_of_limit(0.01, 0.05, None) == "0.20 warning"
+    assert share_of_limit(None, 2.8, 4.5) == "-"
+    assert share_of_limit(1.0, None, None) == "-"
+    assert next_limit(3.0, None, 4.5) == ("alarm", 4.5)
 
 
 # ---------------------------------------------------------------------------
@@ -106,9 +112,9 @@ def snapshot(**changes) -> Snapshot:
         counters=[("samples", 3199488), ("lost", 0), ("frames", 12498), ("corrupt", 2), ("gaps", 0),
                   ("reconnects", 1), ("overflows", 0)],
         bands=[
-            BandRow("overall", "x", 3.2, "mm/s", "alert", 2.8, 4.5),
+            BandRow("overall", "x", 3.2, "mm/s", "warning", 2.8, 4.5),
             BandRow("overall", "y", 1.1, "mm/s", "normal", 2.8, 4.5),
-            BandRow("1x", "x", 5.0, "mm/s", "danger", 2.0, 3.5),
+            BandRow("1x", "x", 5.0, "mm/s", "alarm", 2.0, 3.5),
             BandRow("bearing-outer-race-drive-end", "y", 0.02, "g", "normal", 0.05, None),
         ],
         channel_rows=[
@@ -117,8 +123,8 @@ def snapshot(**changes) -> Snapshot:
         ],
         health=[HealthRow("corrupt", None, "fault", 0.02, "share")],
         events=[
-            EventRow("10:41:07", 301.2, "overall", "x", "normal", "alert", 2.9, "mm/s"),
-            EventRow("10:41:09", 303.6, "1x", "x", "alert", "danger", 3.6, "mm/s"),
+            EventRow("10:41:07", 301.2, "overall", "x", "normal", "warning", 2.9, "mm/s"),
+            EventRow("10:41:09", 303.6, "1x", "x", "warning", "alarm", 3.6, "mm/s"),
             EventRow("10:41:10", 304.0, "corrupt", None, "normal", "fault", 0.02, "share"),
         ],
     )
@@ -142,29 +148,42 @@ def test_render_shows_everything_asked_for():
         assert word in text, word
     # 49.3 Hz is 2958 rpm: rpm = Hz * 60 (common practice).
     assert "3.20 mm/s" in band_line(lines, "overall", "x")
-    assert band_line(lines, "overall", "x").endswith("alert")
-    assert band_line(lines, "1x", "x").endswith("danger")
+    assert band_line(lines, "overall", "x").endswith("warning")
+    assert band_line(lines, "1x", "x").endswith("alarm")
     assert re.search(r"^x\s+49\.3\s+0\.071\s+3\.20\s+0\.09\s+0\.31\s+3\.40$", text, re.M)
     assert re.search(r"health: corrupt fault \(0\.02 share\)", text)
-    assert re.search(r"10:41:09\s+303\.6 s\s+1x/x\s+alert -> danger\s+3\.60 mm/s", text)
+    assert re.search(r"10:41:09\s+303\.6 s\s+1x/x\s+warning -> alarm\s+3\.60 mm/s", text)
 
 
-def test_bars_sit_at_the_right_cells_in_the_rendered_line():
+def test_band_rows_show_value_limits_share_and_a_plain_bar():
     lines = render(snapshot(), 100)
-    for prefix, channel, value, alert, danger in (("overall", "x", 3.2, 2.8, 4.5), ("1x", "x", 5.0, 2.0, 3.5),
-                                                  ("bearing-outer-r", "y", 0.02, 0.05, None)):
-        line = next(ln for ln in lines if ln.startswith(prefix) and re.search(rf"\s{channel}\s+\[", ln))
-        cells = line[line.index("[") + 1 : line.index("]")]
+    for prefix, channel, value, warning, alarm, share in (
+            ("overall", "x", 3.2, 2.8, 4.5, "0.71 alarm"), ("1x", "x", 5.0, 2.0, 3.5, "1.43 alarm"),
+            ("bearing-out", "y", 0.02, 0.05, None, "0.40 warning")):
+        line = next(ln for ln in lines if ln.startswith(prefix) and re.search(rf"\s{channel}\s", ln))
+        assert share in line, line
+        cells = line[line.index("|") + 1 : line.rindex("|")]
         n = len(cells)
         assert n >= 8
-        # The README's scale rule, worked here independently of the module.
-        scale = max(danger * 1.25, value) if danger is not None else max(alert * 1.6, value)
-        filled = math.floor(value / scale * n + 0.5)
-        marks = {min(n - 1, int(alert / scale * n)): "A"}
-        if danger is not None:
-            marks[min(n - 1, int(danger / scale * n))] = "D"
-        expected = "".join(marks.get(i, "#" if i < filled else ".") for i in range(n))
+        # The README's rule, worked here independently of the module.
+        top = alarm if alarm is not None else warning
+        filled = min(n, math.floor(value / top * n + 0.5))
+        expected = "=" * filled + " " * (n - filled)
+        if value > top:
+            expected = expected[:-1] + ">"
         assert cells == expected, (line, expected)
+
+
+def test_render_at_80_columns_keeps_numbers_bar_and_level_words():
+    for colour in (False, True):
+        lines = render(snapshot(), 80, colour=colour)
+        assert all(len(visible(ln)) <= 80 for ln in lines), [ln for ln in lines if len(visible(ln)) > 80]
+        plain = [visible(ln) for ln in lines]
+        row = band_line(plain, "overall", "x")
+        assert row.endswith("warning") and "|" in row
+        assert re.search(r"3\.20 mm/s\s+2\.80\s+4\.50\s+0\.71 alarm", row), row
+        long_row = next(ln for ln in plain if ln.startswith("bearing-out"))
+        assert long_row.endswith("normal") and "bearing-outer-race-drive-end" not in long_row
 
 
 def test_render_fits_width_60_and_keeps_the_level_words():
@@ -172,10 +191,10 @@ def test_render_fits_width_60_and_keeps_the_level_words():
         lines = render(snapshot(), 60, colour=colour)
         assert all(len(visible(ln)) <= 60 for ln in lines), [ln for ln in lines if len(visible(ln)) > 60]
         plain = [visible(ln) for ln in lines]
-        # The long band name is cut, its row still ends with its level word.
-        assert band_line(plain, "overall", "x").endswith("alert")
-        row = next(ln for ln in plain if ln.startswith("bearing-outer-r"))
-        assert row.endswith("normal") and "[" in row and "bearing-outer-race-drive-end" not in row
+        # Too narrow for the bar: the numbers stay, the row ends with its level word.
+        assert band_line(plain, "overall", "x").endswith("warning")
+        row = next(ln for ln in plain if ln.startswith("bearing-out"))
+        assert row.endswith("normal") and "bearing-outer-race-drive-end" not in row
     # Narrower than a band row: cut, never wrapped.
     assert all(len(ln) <= 25 for ln in render(snapshot(), 25))
 
@@ -185,8 +204,8 @@ def test_plain_mode_has_no_escape_codes():
     assert not any(ESC in ln for ln in render(snap, 100, colour=False))
     line = plain_line(snap)
     assert ESC not in line and "\n" not in line
-    assert "overall/x 3.20 mm/s alert" in line
-    assert "1x/x 5.00 mm/s danger" in line
+    assert "overall/x 3.20 mm/s warning" in line
+    assert "1x/x 5.00 mm/s alarm" in line
     assert "health: corrupt fault" in line
 
 
@@ -204,7 +223,7 @@ def test_waiting_snapshot_renders():
                     speed_hz=None, note="waiting for the first result")
     text = "\n".join(render(snap, 80))
     assert "waiting for the first result" in text
-    assert re.search(r"^overall\s+x\s+\[\.+A\.+D\.+\]\s+- mm/s\s+normal$", text, re.M)
+    assert re.search(r"^overall\s+x\s+- mm/s\s+2\.80\s+4\.50\s+-\s+\| +\|\s+normal$", text, re.M)
     assert "health: all checks normal" in text and "events: none yet" in text
     assert plain_line(snap).startswith("stream 312.4 s | speed - | overall/x - mm/s normal")
 
@@ -262,7 +281,7 @@ def test_view_piped_writes_plain_lines_and_shows_the_fault_growing(tmp_path):
     last = lines[-1]
     assert last.startswith("stream 30.0 s")
     assert "source ended" in last
-    rows = dict(re.findall(r"(\S+/\S+) \S+ \S+ (normal|alert|danger)", last))
+    rows = dict(re.findall(r"(\S+/\S+) \S+ \S+ (normal|warning|alarm)", last))
     names = {b["name"] for b in DEMO_TOML["band"]}
     assert {key.split("/")[0] for key in rows} == names
     # The demo's 1x grows by sim_growth g peak per minute. The last result
@@ -274,10 +293,10 @@ def test_view_piped_writes_plain_lines_and_shows_the_fault_growing(tmp_path):
     f = DEMO_TOML["speed"]["rpm"] / 60.0
     expected = a * 9.80665 / (2 * math.pi * f) / math.sqrt(2) * 1000.0  # mm/s, about 3.06
     one_x = next(b for b in DEMO_TOML["band"] if b["name"] == "1x")
-    assert one_x["alert"] < expected < one_x["danger"]
+    assert one_x["warning"] < expected < one_x["alarm"]
     value = float(re.search(r"1x/x (\S+) mm/s", last).group(1))
     assert value == pytest.approx(expected, rel=0.03)
-    assert rows["1x/x"] == "alert"  # raised: it crossed alert near 15 s, long before the end
+    assert rows["1x/x"] == "warning"  # raised: it crossed warning near 15 s, long before the end
 
 
 def test_view_piped_ends_on_sigterm_with_exit_0(tmp_path):
@@ -374,7 +393,8 @@ def test_view_on_a_terminal_redraws_in_place_and_restores_it_on_sigint(tmp_path)
     assert CLEAR_EOL in text and CLEAR_EOS in text
     assert re.search(r"\x1b\[[0-9;]*m", text)  # colour on an xterm without NO_COLOR
     for band in DEMO_TOML["band"]:
-        assert re.search(rf"^{re.escape(band['name'])}\s+x\s+\[[#.AD]+\]\s+[0-9.]+ \S+\s+(normal|alert|danger)$",
+        assert re.search(rf"^{re.escape(band['name'])}\s+x\s+[0-9.]+ \S+\s+[0-9.]+\s+[0-9.]+\s+[0-9.]+ "
+                         r"(warning|alarm)\s+\|[= >]+\|\s+(normal|warning|alarm)$",
                          frame, re.M), frame
     assert "demo-fan" in frame and "results/s" in frame and "waiting" not in frame
     # Every line fits the 100 columns, with one to spare.
@@ -399,7 +419,7 @@ def test_view_on_a_terminal_ends_with_a_finite_source(tmp_path):
     assert not re.search(r"\x1b\[[0-9;]*m", text)
     frame = run.last_frame()
     assert "source ended" in frame
-    assert re.search(r"^1x\s+x\s+\[.*\]\s+\S+ mm/s\s+alert$", frame, re.M), frame
+    assert re.search(r"^1x\s+x\s+\S+ mm/s\s.*\|[= >]+\|\s+warning$", frame, re.M), frame
 
 
 def test_view_on_a_dumb_terminal_writes_plain_lines(tmp_path):
@@ -427,8 +447,8 @@ def test_view_never_touches_the_broker_or_the_state_directory(tmp_path):
     broker.listen(4)
     broker.setblocking(False)
     text = demo_copy(tmp_path, realtime="false", sim_seconds="30.0").read_text(encoding="utf-8")
-    # 1x learns its typical value over 4 s; alert at 1.5x, danger at 2x of it.
-    text, count = re.subn(r"^alert = 2\.0\ndanger = 3\.5$", "baseline = 4.0\nalert_ratio = 1.5\ndanger_ratio = 2.0",
+    # 1x learns its typical value over 4 s; warning at 1.5x, alarm at 2x of it.
+    text, count = re.subn(r"^warning = 2\.0\nalarm = 3\.5$", "baseline = 4.0\nwarning_ratio = 1.5\nalarm_ratio = 2.0",
                           text, flags=re.M)
     assert count == 1
     port = broker.getsockname()[1]
@@ -446,11 +466,11 @@ def test_view_never_touches_the_broker_or_the_state_directory(tmp_path):
 
     try:
         # Nothing learned yet: the view learns in memory (about 1.1 mm/s in the
-        # first seconds, by the physics of the piped test above), so danger at
+        # first seconds, by the physics of the piped test above), so alarm at
         # about 2.2 mm/s is crossed long before 30 s.
         first, last = view_last_line()
         assert "1x/x - mm/s normal (learning baseline)" in first
-        assert re.search(r"1x/x \S+ mm/s danger \|", last), last
+        assert re.search(r"1x/x \S+ mm/s alarm \|", last), last
         assert not state.exists() or list(state.iterdir()) == []
         # A service learned 10 mm/s: limits at 15 and 20 mm/s, far above 3 mm/s.
         BaselineStore(str(state)).put("1x/x", 10.0, 4.0, 4.0)
