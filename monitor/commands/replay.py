@@ -43,7 +43,7 @@ import os
 import sys
 import threading
 import time
-from typing import Any, Callable, Dict, List, NamedTuple, Optional, TextIO, Tuple
+from typing import Any, Dict, List, NamedTuple, Optional, TextIO, Tuple
 
 import numpy as np
 
@@ -93,10 +93,9 @@ def _gap_notes(reader: RecordingReader) -> Dict[int, int]:
 
 class _ReplaySource(Source):
     """The recording as a source: the file source's blocks, cut so that no
-    block is longer than one hop (so each block gives at most one result),
-    with the noted gaps put back as `Block.lost` and integer full scale set.
-    `before_read` is called at every read: between two reads, the monitor
-    has taken exactly one block through every stage."""
+    block is longer than one hop (the blocks every replay has fed the
+    health checks with), with the noted gaps put back as `Block.lost` and
+    integer full scale set."""
 
     kind = "file"
 
@@ -109,18 +108,16 @@ class _ReplaySource(Source):
         self.max_block = max(1, max_block)
         self.full_scale = full_scale
         self.position = 0  # samples of the file handed out
-        self.before_read: Callable[[], None] = lambda: None
+        self.sample_rate = inner.sample_rate
         self._pending: Optional[np.ndarray] = None
 
     def _open(self) -> None:
         self.inner.open()
-        self.sample_rate = self.inner.sample_rate
 
     def _close(self) -> None:
         self.inner.close()
 
     def _read(self, timeout: float) -> Optional[Block]:
-        self.before_read()
         if self._pending is None or not len(self._pending):
             block = self.inner.read(timeout)
             if block is None:
@@ -372,36 +369,31 @@ def replay(
         # on the wall clock while a file is read.
         monitor = Monitor(cfg, source, sink, ids=EventIds(),
                           clock=lambda: (source.samples + source.lost) / fs)
-        rows = [(b.name, cfg.source.channels[ch], quantity_unit(b.quantity, cfg.source.unit), b.warning, b.alarm)
-                for b, ch in monitor.bank.pairs]
+        rows = [(b.band.name, b.channel, b.unit, b.band.warning, b.band.alarm) for b in monitor.band_states()]
         tally = Tally(rows, spec.hop / fs)
         history = History(len(rows)) if keep_history else None
         reference = np.where(np.isfinite(tally.warning), tally.warning, tally.alarm)
-        state = {"seen": 0, "worst": None}
+        worst: List[Optional[Worst]] = [None]
 
-        def observe() -> None:
-            if monitor.results != state["seen"]:
-                state["seen"] = monitor.results
-                result = monitor.latest
-                values = np.array([b.value for b in result.bands], dtype=float)
-                tally.add(result.stream_s, values)
-                if history is not None:
-                    history.add(result.stream_s, values)
-                    score, pair = _score(values, reference)
-                    if state["worst"] is None or score > state["worst"].score:
-                        state["worst"] = Worst(score, bool(np.isfinite(reference).any()), pair, result)
+        def observe(result: Result) -> None:
+            values = np.array([b.value for b in result.bands], dtype=float)
+            tally.add(result.stream_s, values)
+            if history is not None:
+                history.add(result.stream_s, values)
+                score, pair = _score(values, reference)
+                if worst[0] is None or score > worst[0].score:
+                    worst[0] = Worst(score, bool(np.isfinite(reference).any()), pair, result)
             if progress is not None:
                 progress.update(source.position / fs)
 
-        source.before_read = observe
+        monitor.add_observer(observe)
         monitor.run(stop)
-        observe()
     finally:
         source.close()
     if progress is not None:
         progress.clear()
     return Replayed(recording, cfg, fs, frames, source.position, source.lost, len(gaps) - len(source.gaps),
-                    tally, sink.counts, history, state["worst"], source.position < frames)
+                    tally, sink.counts, history, worst[0], source.position < frames)
 
 
 # -------------------------------------------------------------- progress

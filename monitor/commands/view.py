@@ -31,14 +31,13 @@ import time
 from dataclasses import dataclass
 from typing import Callable, Deque, Dict, List, Mapping, Optional, Sequence, TextIO, Tuple
 
-from ..config import Config, quantity_unit
+from ..config import Config
 from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError
 from ..service.monitor import Monitor
 from ..service.posix_signals import stop_on_signals
 from ..acquire.sources import open_source
 from ..deliver.event_ids import EventIds
-from ..analyse.stats import time_stats
 
 log = logging.getLogger("bandwatch.view")
 
@@ -330,17 +329,10 @@ def plain_line(snap: Snapshot) -> str:
 
 
 class ViewSink(Sink):
-    """The view's sink: keeps the last events and paces the refresh. Every
-    `tick` costs one clock reading; `refresh` runs at most once per
-    `interval` seconds of wall time."""
+    """The view's sink: keeps the last events, sends nothing anywhere."""
 
-    def __init__(self, interval: float = REFRESH_S, keep: int = EVENTS_SHOWN,
-                 clock: Callable[[], float] = time.monotonic) -> None:
-        self.interval = interval
-        self.clock = clock
+    def __init__(self, keep: int = EVENTS_SHOWN) -> None:
         self.events: Deque[Payload] = collections.deque(maxlen=keep)
-        self.refresh: Optional[Callable[[], None]] = None
-        self._last = -math.inf
 
     def open(self, online: Payload, offline: Payload) -> None:
         pass
@@ -348,19 +340,26 @@ class ViewSink(Sink):
     def send(self, suffix: str, payload: Payload) -> None:
         if suffix == "event":
             self.events.append(payload)
-        self.tick()
 
     def close(self, offline: Payload) -> None:
         pass
 
-    def tick(self, force: bool = False) -> None:
-        """Called at every turn of the measuring loop (Sink.tick) and on each
-        payload: redraws at most every `interval` seconds."""
+
+class Pacer:
+    """Lets a redraw through at most once per `interval` seconds of wall
+    time; each call costs one clock reading."""
+
+    def __init__(self, interval: float, clock: Callable[[], float] = time.monotonic) -> None:
+        self.interval = interval
+        self.clock = clock
+        self._last = -math.inf
+
+    def due(self) -> bool:
         now = self.clock()
-        if self.refresh is None or (not force and now - self._last < self.interval):
-            return
+        if now - self._last < self.interval:
+            return False
         self._last = now
-        self.refresh()
+        return True
 
 
 class _Output:
@@ -416,26 +415,25 @@ class _Screen(_Output):
         self.write((RESET if self.colour else "") + SHOW_CURSOR + "\n")
 
 
-def _source_name(monitor: Monitor) -> str:
-    src = monitor.source
-    if hasattr(src, "describe"):
-        return src.describe()
-    if src.kind == "file":
-        return f"file {monitor.config.source.path}"
-    return src.kind or monitor.config.source.kind
-
-
 class _Live:
-    """Copies what to show out of the running monitor, in its thread."""
+    """Copies what to show out of the running monitor, in its thread, through
+    the monitor's public views; redraws at the pace of `pacer`."""
 
-    def __init__(self, monitor: Monitor, sink: ViewSink, output: _Output, clock: Callable[[], float] = time.monotonic):
+    def __init__(self, monitor: Monitor, sink: ViewSink, output: _Output, pacer: Pacer,
+                 clock: Callable[[], float] = time.monotonic):
         self.monitor = monitor
         self.sink = sink
         self.output = output
+        self.pacer = pacer
         self.clock = clock
         self.note = ""
         # (wall time, results) at recent refreshes, for results per second.
         self._marks: Deque[Tuple[float, int]] = collections.deque()
+
+    def tick(self) -> None:
+        """At every turn of the measuring loop: redraw when due."""
+        if self.pacer.due():
+            self.refresh()
 
     def refresh(self) -> None:
         self.output.show(self.snapshot())
@@ -444,22 +442,22 @@ class _Live:
         m = self.monitor
         cfg = m.config
         src = m.source
-        latest = m.latest
-        note = self.note or ("" if latest is not None else "waiting for the first result")
+        note = self.note or ("" if m.latest is not None else "waiting for the first result")
         return Snapshot(
             node=cfg.node,
-            source=_source_name(m),
+            source=src.describe(),
             sample_rate=m.fs,
             channels=list(cfg.source.channels),
             stream_s=(src.samples + src.lost) / m.fs,
             results_per_s=self._results_rate(),
-            speed_hz=m.speed.speed_hz,
-            speed_mode=self._speed_mode(),
+            speed_hz=m.speed_hz,
+            speed_mode=m.speed_mode(),
             counters=self._counters(),
-            bands=self._bands(),
+            bands=[BandRow(b.band.name, b.channel, b.value, b.unit, b.level, b.warning, b.alarm,
+                           "learning baseline" if b.learning else "") for b in m.band_states()],
             channel_rows=self._channels(),
-            health=[HealthRow(c.name, c.channel, c.rule.level, c.value, c.unit)
-                    for c in m.health.checks if c.rule.level != "normal"],
+            health=[HealthRow(c.name, c.channel, c.level, c.value, c.unit)
+                    for c in m.check_states() if c.level != "normal"],
             events=[_event_row(p) for p in self.sink.events],
             note=note,
         )
@@ -474,19 +472,11 @@ class _Live:
         t0, n0 = marks[0]
         return (self.monitor.results - n0) / (now - t0) if now - t0 >= REFRESH_S / 2 else None
 
-    def _speed_mode(self) -> str:
-        m = self.monitor
-        if m.speed.locked:
-            return "tracked"
-        if m.config.speed.track and m.speed.speed_hz != m.config.speed.nominal_hz:
-            return "held"  # the last tracked speed, no clear peak now
-        return "nominal"
-
     def _counters(self) -> List[Tuple[str, int]]:
         src = self.monitor.source
         out = [("samples", src.samples), ("lost", src.lost)]
-        if hasattr(src, "counters"):
-            c: Dict[str, int] = src.counters()
+        c: Dict[str, int] = src.counters()
+        if c:
             out += [("frames", c.get("frames", 0)),
                     ("corrupt", c.get("corrupt_frames", 0) + c.get("mismatched", 0) + c.get("nonfinite", 0)),
                     ("gaps", c.get("gaps", 0)),
@@ -494,26 +484,11 @@ class _Live:
                     ("overflows", c.get("overflows", 0))]
         return out
 
-    def _bands(self) -> List[BandRow]:
-        m = self.monitor
-        latest = m.latest
-        rows = []
-        for i, ((band, ch), rule, base) in enumerate(zip(m.bank.pairs, m.band_rules, m.baselines)):
-            value = latest.bands[i].value if latest is not None else None
-            # The limits the level machine holds now (a learned baseline may set them).
-            limits = dict(rule.limits)
-            rows.append(BandRow(band.name, m.config.source.channels[ch], value,
-                                quantity_unit(band.quantity, m.config.source.unit), rule.level,
-                                limits.get("warning"), limits.get("alarm"),
-                                "learning baseline" if base.learning else ""))
-        return rows
-
     def _channels(self) -> List[ChannelRow]:
         m = self.monitor
         unit = m.config.source.unit
         latest = m.latest
-        n = min(m.ring.count, m.config.spectrum.span)
-        stats = time_stats(m.ring.latest(n)) if n >= 2 else None
+        stats = m.recent_stats()
         rows = []
         for i, name in enumerate(m.config.source.channels):
             row = ChannelRow(name, unit)
@@ -578,7 +553,7 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
         log.error("cannot open the source: %s", exc)
         return 1
     try:
-        sink = ViewSink(REFRESH_S if screen else PLAIN_REFRESH_S)
+        sink = ViewSink()
         # The view looks and never writes: event ids count from 1 in memory
         # and no capture is kept, so a service running beside it on the same
         # state directory is left alone. Learned baselines are read from
@@ -586,13 +561,13 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
         state_dir = config.mqtt.queue_dir if config.mqtt else None
         monitor = Monitor(dataclasses.replace(config, capture=None), source, sink, ids=EventIds(),
                           state_dir=state_dir, read_only=True)
-        live = _Live(monitor, sink, output)
-        sink.refresh = live.refresh
+        live = _Live(monitor, sink, output, Pacer(REFRESH_S if screen else PLAIN_REFRESH_S))
+        monitor.add_ticker(live.tick)
         output.begin()
         try:
             monitor.run(stop)
             live.note = "source ended" if source.ended else "stopped"
-            sink.tick(force=True)
+            live.refresh()
         finally:
             output.end()
     except BandwatchError as exc:
@@ -608,5 +583,5 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
     return 0
 
 
-__all__ = ["BandRow", "ChannelRow", "EventRow", "HealthRow", "Snapshot", "ViewSink", "bar", "next_limit", "share_of_limit",
+__all__ = ["BandRow", "ChannelRow", "EventRow", "HealthRow", "Pacer", "Snapshot", "ViewSink", "bar", "next_limit", "share_of_limit",
            "plain_line", "render", "view"]

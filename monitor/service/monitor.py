@@ -21,7 +21,7 @@ from .. import __version__
 from ..analyse.bands import BandBank, BandValue
 from ..judge.baseline import Baseline, BaselineStore
 from .capture import Capture
-from ..config import Config
+from ..config import BandConfig, Config, quantity_unit
 from ..errors import ConfigError
 from ..deliver.base import Sink
 from ..analyse.envelope import EnvelopeStage
@@ -78,6 +78,36 @@ class Result:
         return self.bank.velocity_rms(self.spectrum)
 
 
+@dataclass(frozen=True)
+class BandState:
+    """One band on one channel as the monitor holds it now: the latest value
+    (None before the first result), the level, and the limits the level
+    machine uses (learned ones once a baseline is known)."""
+
+    band: BandConfig
+    channel: str
+    unit: str
+    value: Optional[float]
+    level: str
+    warning: Optional[float]
+    alarm: Optional[float]
+    learning: bool  # a baseline is still being learned
+
+
+@dataclass(frozen=True)
+class CheckState:
+    """One health check now."""
+
+    name: str
+    channel: Optional[str]
+    level: str
+    value: Optional[float]
+    unit: str
+
+
+Observer = Callable[[Result], None]
+
+
 class Monitor:
     def __init__(
         self,
@@ -107,11 +137,16 @@ class Monitor:
         self.since = utc_now()
         self.results = 0
         self.latest: Optional[Result] = None
+        self._observers: List[Observer] = []
+        self._tickers: List[Callable[[], None]] = []
         self._build()
 
     def _build(self) -> None:
         cfg = self.config
         self.fs = self.source.sample_rate
+        if not self.fs > 0:
+            raise ValueError(f"the {self.source.describe()} source gives sample_rate={self.fs!r}; "
+                             "a monitor needs the rate before it is built")
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self.capture: Optional[Capture] = None
@@ -173,6 +208,55 @@ class Monitor:
                for (b, ch), rule in zip(self.bank.pairs, self.band_rules)}
         out.update({(c.name, c.channel): c.rule.level for c in self.health.checks})
         return out
+
+    def add_observer(self, fn: Observer) -> None:
+        """Call `fn(result)` in the measuring thread after every result, once
+        its levels, events and summary are out. `fn` must return quickly; it
+        may read the monitor's public views (`band_states`, `check_states`,
+        `speed_mode`, `recent_stats`) but change nothing."""
+        self._observers.append(fn)
+
+    def add_ticker(self, fn: Callable[[], None]) -> None:
+        """Call `fn()` at every turn of the measuring loop (at least every
+        READ_TIMEOUT_S, samples or not), for a display that must move while no
+        result comes. Same rules as an observer."""
+        self._tickers.append(fn)
+
+    def band_states(self) -> List[BandState]:
+        """Every band on every channel, in the order of `Result.bands`."""
+        latest = self.latest
+        channels = self.config.source.channels
+        out = []
+        for i, ((band, ch), rule, base) in enumerate(zip(self.bank.pairs, self.band_rules, self.baselines)):
+            limits = dict(rule.limits)
+            out.append(BandState(band, channels[ch], quantity_unit(band.quantity, self.config.source.unit),
+                                 latest.bands[i].value if latest is not None else None, rule.level,
+                                 limits.get("warning"), limits.get("alarm"), base.learning))
+        return out
+
+    def check_states(self) -> List[CheckState]:
+        """Every health check, in the order of the levels payload."""
+        return [CheckState(c.name, c.channel, c.rule.level, c.value, c.unit) for c in self.health.checks]
+
+    @property
+    def speed_hz(self) -> Optional[float]:
+        """The running speed now (None if unknown)."""
+        return self.speed.speed_hz
+
+    def speed_mode(self) -> str:
+        """"tracked" (a clear peak now), "held" (the last tracked speed, no
+        clear peak now) or "nominal"."""
+        if self.speed.locked:
+            return "tracked"
+        if self.config.speed.track and self.speed.speed_hz != self.config.speed.nominal_hz:
+            return "held"
+        return "nominal"
+
+    def recent_stats(self) -> Optional[Dict[str, np.ndarray]]:
+        """Time-domain statistics per channel over the samples the next
+        result covers (fewer at start); None with under two samples."""
+        n = min(self.ring.count, self.config.spectrum.span)
+        return time_stats(self.ring.latest(n)) if n >= 2 else None
 
     def request_reload(self, loader: Callable[[], Config]) -> None:
         """Ask for a reload with `loader` (it reads and checks the file);
@@ -243,6 +327,8 @@ class Monitor:
                 if self._making_progress():
                     self.notifier.watchdog()
                 self.sink.tick()
+                for tick in self._tickers:
+                    tick()
                 if self._reload_requested.is_set():
                     self._reload()
                 block = self.source.read(READ_TIMEOUT_S)
@@ -263,10 +349,7 @@ class Monitor:
     def _making_progress(self) -> bool:
         """True while the source's and the sink's threads show signs of life."""
         now = time.monotonic()
-        parts = [("the source's reader", self.source.heartbeat())]
-        beat = getattr(self.sink, "heartbeat", None)
-        if callable(beat):
-            parts.append(("the publisher", beat()))
+        parts = [("the source's reader", self.source.heartbeat()), ("the publisher", self.sink.heartbeat())]
         stuck = next((name for name, at in parts if now - at > self.stall_s), None)
         if stuck != self._stalled:
             if stuck:
@@ -297,7 +380,7 @@ class Monitor:
                 self.envelope.reset()
             self._pending = self.config.spectrum.size
         n = block.samples.shape[0]
-        counters = self.source.counters() if hasattr(self.source, "counters") else None
+        counters = self.source.counters()
         self._stream_s = (self._samples + n - 1) / self.fs
         self._emit_health(self.health.on_block(
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
@@ -339,6 +422,8 @@ class Monitor:
             self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+        for observe in self._observers:
+            observe(result)
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)

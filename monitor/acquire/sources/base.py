@@ -6,7 +6,7 @@ implements `_open`, `_read` and `_close`.
 """
 
 import time
-from typing import NamedTuple, Optional
+from typing import Dict, NamedTuple, Optional
 
 import numpy as np
 
@@ -55,6 +55,15 @@ class Source:
         reader thread reports when that thread last went round its loop."""
         return time.monotonic()
 
+    def counters(self) -> Dict[str, int]:
+        """Cumulative counters of the link and its decoder (frames, gaps,
+        connects, ...); a source without a link or decoder has none."""
+        return {}
+
+    def describe(self) -> str:
+        """Kind and address, for log lines, errors and the view."""
+        return self.kind or self.config.kind
+
     def close(self) -> None:
         self._close()
 
@@ -70,7 +79,7 @@ class Source:
         self.blocks += 1
         self.samples += n
         self.lost += block.lost
-        if getattr(self.config, "realtime", False):
+        if self.config.realtime:
             self._pace(n)
         return block
 

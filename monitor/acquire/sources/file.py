@@ -31,24 +31,20 @@ class FileSource(Source):
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
         self._reader: Optional[RecordingReader] = None
-        self._full_scale: Optional[float] = None
-        self.block = 0
+        # The header is read now, so the sample rate is known before anything
+        # is built on this source; a missing or unfit file fails here.
+        with open_recording(config.path) as reader:
+            self._check(reader)
+            self.sample_rate = float(reader.sample_rate)
+            self.block = max(1, int(round(reader.sample_rate * BLOCK_SECONDS)))
+            self._full_scale = _FULL_SCALE.get(reader.sample_type)
 
     def _open(self) -> None:
-        cfg = self.config
-        reader = open_recording(cfg.path)
-        try:
-            self._check(reader)
-        except BaseException:
-            reader.close()
-            raise
-        self._reader = reader
-        self.sample_rate = float(reader.sample_rate)
-        self.block = max(1, int(round(reader.sample_rate * BLOCK_SECONDS)))
-        # Integer recordings clip at their type's largest value (uint8 is
-        # widened to -128..127).
-        self._full_scale = _FULL_SCALE.get(reader.sample_type)
+        self._reader = open_recording(self.config.path)
         self.ended = False
+
+    def describe(self) -> str:
+        return f"file {self.config.path}"
 
     def _check(self, reader: RecordingReader) -> None:
         cfg = self.config
