@@ -47,8 +47,8 @@ from typing import Any, Dict, List, NamedTuple, Optional, TextIO, Tuple
 
 import numpy as np
 
-from ..analyse.bands import TO_SI
-from ..config import Config, quantity_unit
+from ..analyse.units import TO_SI, quantity_unit
+from ..config import Config, check_rate
 from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError, ConfigError
 from ..deliver.payloads import encode
@@ -56,18 +56,16 @@ from ..service.monitor import Monitor, Result
 from ..acquire.recording import RecordingError, RecordingReader, open_recording
 from ..service.posix_signals import stop_on_signals
 from ..acquire.sources import open_source
-from ..acquire.sources.base import Block, Source
+from ..acquire.block import Block
+from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
+from .cli import EXIT_FAILURE, EXIT_OK, usage
 
 log = logging.getLogger("bandwatch.replay")
 
-EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 HISTORY_ROWS = 100_000
 PROGRESS_INTERVAL_S = 0.1
 PLOT_HINT = "pip install 'bandwatch[plot]'"
-# Largest positive raw value of each integer WAV sample type, for the
-# clipping check (8-bit samples are shifted to signed by the reader).
-_FULL_SCALE = {"uint8": 127.0, "int16": 32767.0, "int24": 8388607.0, "int32": 2147483647.0}
 
 
 # ------------------------------------------------------------------ source
@@ -94,22 +92,19 @@ def _gap_notes(reader: RecordingReader) -> Dict[int, int]:
 class _ReplaySource(Source):
     """The recording as a source: the file source's blocks, cut so that no
     block is longer than one hop (the blocks every replay has fed the
-    health checks with), with the noted gaps put back as `Block.lost` and
-    integer full scale set."""
+    health checks with), with the noted gaps put back as `Block.lost`."""
 
     kind = "file"
 
-    def __init__(self, inner: Source, gaps: Dict[int, int], max_block: int,
-                 full_scale: Optional[float]) -> None:
+    def __init__(self, inner: Source, gaps: Dict[int, int], max_block: int) -> None:
         super().__init__(inner.config)
         self.inner = inner
         self.gaps = dict(gaps)
         self._gap_at = collections.deque(sorted(gaps))  # indices still ahead, first first
         self.max_block = max(1, max_block)
-        self.full_scale = full_scale
         self.position = 0  # samples of the file handed out
         self.sample_rate = inner.sample_rate
-        self._pending: Optional[np.ndarray] = None
+        self._pending: Optional[Block] = None
 
     def _open(self) -> None:
         self.inner.open()
@@ -118,21 +113,21 @@ class _ReplaySource(Source):
         self.inner.close()
 
     def _read(self, timeout: float) -> Optional[Block]:
-        if self._pending is None or not len(self._pending):
-            block = self.inner.read(timeout)
-            if block is None:
+        if self._pending is None or not len(self._pending.samples):
+            self._pending = self.inner.read(timeout)
+            if self._pending is None:
                 self.ended = self.inner.ended
                 return None
-            self._pending = block.samples
-        n = min(len(self._pending), self.max_block)
+        pending = self._pending
+        n = min(len(pending.samples), self.max_block)
         lost = 0
         if self._gap_at and self._gap_at[0] == self.position:
             lost = self.gaps.pop(self._gap_at.popleft())
         if self._gap_at and self._gap_at[0] < self.position + n:
             n = self._gap_at[0] - self.position  # a gap starts a block of its own
-        samples, self._pending = self._pending[:n], self._pending[n:]
+        self._pending = pending._replace(samples=pending.samples[n:])
         self.position += n
-        return Block(samples, lost, self.full_scale)
+        return pending._replace(samples=pending.samples[:n], lost=lost)
 
 
 class _EventSink(Sink):
@@ -311,7 +306,7 @@ def replay_config(config: Config, reader: RecordingReader) -> Config:
                           f"is {src.sample_rate:g} Hz, but the recording {reader.path} was made at "
                           f"{reader.sample_rate} Hz; set it to {reader.sample_rate} (or use kind = \"file\")")
     if src.sample_rate <= 0:
-        _check_nyquist(config, rate / 2.0)
+        check_rate(config, rate)
     ours = "bandwatch_version" in reader.metadata
     scale = src.scale
     if ours:
@@ -324,22 +319,6 @@ def replay_config(config: Config, reader: RecordingReader) -> Config:
                                  scale=scale, simulator=None)
     # A replay writes no captures: the recording already holds every sample.
     return dataclasses.replace(config, source=source, capture=None)
-
-
-def _check_nyquist(config: Config, nyquist: float) -> None:
-    """Band edges, checked at load time only when the rate was known."""
-    sp = config.speed
-    top_hz = sp.search_hz[1] if sp.track and sp.search_hz else sp.nominal_hz
-    for i, band in enumerate(config.bands, start=1):
-        key = "hz" if band.hz is not None else "orders"
-        hi = band.hz[1] if band.hz is not None else (band.orders[1] * top_hz if band.orders and top_hz else 0.0)
-        if hi > nyquist:
-            raise ConfigError(config.path, f"band[{i}].{key}",
-                              f"reaches {hi:g} Hz, above the recording's Nyquist frequency {nyquist:g} Hz")
-    if config.envelope is not None and config.envelope.band_hz[1] > nyquist:
-        raise ConfigError(config.path, "envelope.band_hz",
-                          f"reaches {config.envelope.band_hz[1]:g} Hz, above the recording's "
-                          f"Nyquist frequency {nyquist:g} Hz")
 
 
 def replay(
@@ -358,9 +337,8 @@ def replay(
         cfg = replay_config(config, reader)
         gaps = _gap_notes(reader)
         frames = reader.frames
-        full_scale = _FULL_SCALE.get(reader.sample_type)
     spec = cfg.spectrum
-    source = _ReplaySource(open_source(cfg.source), gaps, spec.hop, full_scale)
+    source = _ReplaySource(open_source(cfg.source), gaps, spec.hop)
     source.open()
     try:
         fs = source.sample_rate
@@ -574,11 +552,6 @@ def _draw_spectrum(ax: Any, rep: Replayed) -> None:
 # --------------------------------------------------------------- command
 
 
-def _usage(message: str, err: TextIO) -> int:
-    print(f"bandwatch: replay: {message}", file=err)
-    return EXIT_USAGE
-
-
 def replay_command(config: Config, recording: str, plot: Optional[str] = None,
                    out: Optional[TextIO] = None, err: Optional[TextIO] = None) -> int:
     """`bandwatch replay -c FILE REC [--plot PNG]`; returns the exit code."""
@@ -586,10 +559,10 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
     err = err or sys.stderr
     if plot is not None:
         if not plot_available():
-            return _usage(f"--plot needs matplotlib, which is not installed: {PLOT_HINT}", err)
+            return usage("replay", f"--plot needs matplotlib, which is not installed: {PLOT_HINT}", err)
         folder = os.path.dirname(os.path.abspath(plot))
         if not os.path.isdir(folder):
-            return _usage(f"cannot write {plot}: the folder {folder} does not exist", err)
+            return usage("replay", f"cannot write {plot}: the folder {folder} does not exist", err)
     progress = None
     if err.isatty():
         try:
@@ -603,7 +576,7 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
         except (ConfigError, RecordingError) as exc:
             if progress is not None:
                 progress.clear()
-            return _usage(str(exc), err)
+            return usage("replay", str(exc), err)
         except BandwatchError as exc:
             if progress is not None:
                 progress.clear()

@@ -36,8 +36,8 @@ from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError
 from ..service.monitor import Monitor
 from ..service.posix_signals import stop_on_signals
-from ..acquire.sources import open_source
 from ..deliver.event_ids import EventIds
+from .cli import EXIT_FAILURE, EXIT_OK, open_source_or_fail
 
 log = logging.getLogger("bandwatch.view")
 
@@ -535,7 +535,7 @@ def _modes(out: TextIO, environ: Mapping[str, str]) -> Tuple[bool, bool]:
 def view(config: Config, out: Optional[TextIO] = None, stop: Optional[threading.Event] = None,
          environ: Optional[Mapping[str, str]] = None) -> int:
     """Run `bandwatch view` until the source ends or `stop` is set (SIGINT,
-    SIGTERM, SIGHUP set it). Returns the exit code: 0, or 1 on a failure."""
+    SIGTERM, SIGHUP set it). Returns the exit code: EXIT_OK, or EXIT_FAILURE on a failure."""
     out = sys.stdout if out is None else out
     # No log line for the signal: it would land on the screen being restored.
     with stop_on_signals(stop or threading.Event(), None,
@@ -546,12 +546,9 @@ def view(config: Config, out: Optional[TextIO] = None, stop: Optional[threading.
 def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[str, str]) -> int:
     screen, colour = _modes(out, environ)
     output: _Output = _Screen(out, stop, colour) if screen else _Output(out, stop)
-    try:
-        source = open_source(config.source)
-        source.open()
-    except BandwatchError as exc:
-        log.error("cannot open the source: %s", exc)
-        return 1
+    source = open_source_or_fail(config)
+    if source is None:
+        return EXIT_FAILURE
     try:
         sink = ViewSink()
         # The view looks and never writes: event ids count from 1 in memory
@@ -572,7 +569,7 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
             output.end()
     except BandwatchError as exc:
         log.error("%s", exc)
-        return 1
+        return EXIT_FAILURE
     finally:
         source.close()
     if output.broken and out is sys.stdout:
@@ -580,7 +577,7 @@ def _view(config: Config, out: TextIO, stop: threading.Event, environ: Mapping[s
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         os.close(devnull)
-    return 0
+    return EXIT_OK
 
 
 __all__ = ["BandRow", "ChannelRow", "EventRow", "HealthRow", "Pacer", "Snapshot", "ViewSink", "bar", "next_limit", "share_of_limit",

@@ -17,10 +17,36 @@ Payload = Dict[str, Any]
 NO_LIMITS: Payload = {"warning": None, "alarm": None}
 
 
+def utc_text(when: datetime.datetime) -> str:
+    """An aware time as payloads and recordings write it: UTC, ISO 8601
+    with milliseconds and Z."""
+    if when.tzinfo is None:
+        raise ValueError(f"{when=} has no time zone; give an aware datetime (UTC)")
+    when = when.astimezone(datetime.timezone.utc)
+    return when.strftime("%Y-%m-%dT%H:%M:%S.") + f"{when.microsecond // 1000:03d}Z"
+
+
 def utc_now() -> str:
-    """UTC time, ISO 8601 with milliseconds and Z."""
-    now = datetime.datetime.now(datetime.timezone.utc)
-    return now.strftime("%Y-%m-%dT%H:%M:%S.") + f"{now.microsecond // 1000:03d}Z"
+    """Now, as `utc_text` writes it."""
+    return utc_text(datetime.datetime.now(datetime.timezone.utc))
+
+
+def utc_from_epoch(seconds: float) -> str:
+    """A Unix time (seconds), as `utc_text` writes it."""
+    return utc_text(datetime.datetime.fromtimestamp(seconds, datetime.timezone.utc))
+
+
+def parse_utc(text: Any) -> Optional[datetime.datetime]:
+    """The aware time in a text `utc_text` wrote (a naive one is taken as
+    UTC); None for anything else."""
+    if not isinstance(text, str):
+        return None
+    try:
+        # fromisoformat before Python 3.11 does not take the Z suffix.
+        when = datetime.datetime.fromisoformat(text[:-1] + "+00:00" if text.endswith("Z") else text)
+    except ValueError:
+        return None
+    return when if when.tzinfo is not None else when.replace(tzinfo=datetime.timezone.utc)
 
 
 def num(value: Optional[float]) -> Optional[float]:

@@ -21,7 +21,8 @@ from .. import __version__
 from ..analyse.bands import BandBank, BandValue
 from ..judge.baseline import Baseline, BaselineStore
 from .capture import Capture
-from ..config import BandConfig, Config, quantity_unit
+from ..analyse.units import quantity_unit
+from ..config import BandConfig, Config
 from ..errors import ConfigError
 from ..deliver.base import Sink
 from ..analyse.envelope import EnvelopeStage
@@ -31,7 +32,8 @@ from ..deliver.payloads import NO_LIMITS, Payload, num, stamp, utc_now
 from ..analyse.peaks import interpolate_peak
 from ..acquire.ring import Ring
 from ..judge.levels import BAND_LEVELS, LevelMachine
-from ..acquire.sources.base import Block, Source
+from ..acquire.block import Block
+from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
 from ..analyse.spectrum import SpectralStage, Spectrum
 from ..analyse.speed import SpeedTracker

@@ -6,28 +6,10 @@ implements `_open`, `_read` and `_close`.
 """
 
 import time
-from typing import Dict, NamedTuple, Optional
-
-import numpy as np
+from typing import Dict, Optional
 
 from ...config import SourceConfig
-
-
-class Block(NamedTuple):
-    """Consecutive samples, shaped (n, channels), in raw units (before scale).
-
-    `lost` counts samples per channel known to be missing just before this
-    block (a sequence gap); the pipeline never lets a spectrum span them.
-    `full_scale` is the largest positive value of the raw integer type
-    (32767 for int16), when the samples came as integers: a sample at or
-    beyond it in magnitude is clipped.
-    `timestamp_us` is the sensor's time of the first sample, when it sent one.
-    """
-
-    samples: np.ndarray
-    lost: int = 0
-    full_scale: Optional[float] = None
-    timestamp_us: Optional[int] = None
+from ..block import Block
 
 
 class Source:
