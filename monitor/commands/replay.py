@@ -28,26 +28,23 @@ Gaps noted in a bandwatch recording (`"lost"` in its metadata, see
 `record.py`) are put back as the losses they were, so a replay's stream
 times and results match the live run's.
 
-The trend history for the plot keeps one row of band values per result up
-to HISTORY_ROWS rows; beyond that, neighbouring rows are merged two into
-one, keeping the larger value of each (a limit crossing is never smoothed
-away), so memory stays bounded however long the recording is. The table's
-numbers are computed on every result and are exact whatever the length.
+What is kept and the table are in `replay_tally.py` (the trend history for
+the plot stays bounded however long the recording is; the table's numbers
+are exact whatever the length), the plot in `replay_plot.py`.
 """
 
 import collections
 import dataclasses
 import logging
-import math
 import os
 import sys
 import threading
 import time
-from typing import Any, Dict, List, NamedTuple, Optional, TextIO, Tuple
+from typing import Dict, List, Optional, TextIO, Tuple
 
 import numpy as np
 
-from ..analyse.units import TO_SI, quantity_unit
+from ..analyse.units import TO_SI
 from ..config import Config, check_rate
 from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError, ConfigError
@@ -60,12 +57,12 @@ from ..acquire.block import Block
 from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
 from .cli import EXIT_FAILURE, EXIT_OK, usage
+from .replay_plot import PLOT_HINT, draw_plot, plot_available
+from .replay_tally import History, Replayed, Tally, Worst, score as score_of, write_table
 
 log = logging.getLogger("bandwatch.replay")
 
-HISTORY_ROWS = 100_000
 PROGRESS_INTERVAL_S = 0.1
-PLOT_HINT = "pip install 'bandwatch[plot]'"
 
 
 # ------------------------------------------------------------------ source
@@ -165,130 +162,6 @@ class _EventSink(Sink):
                 pass
 
 
-# ----------------------------------------------------------- what is kept
-
-
-class Tally:
-    """Per band and channel, over every result: maximum and its stream time,
-    time at or above warning and alarm, events."""
-
-    def __init__(self, rows: List[Tuple[str, str, str, Optional[float], Optional[float]]], hop_s: float) -> None:
-        self.rows = rows  # (band, channel, unit, warning, alarm), in result order
-        self.hop_s = hop_s
-        n = len(rows)
-        self.warning = np.array([np.nan if r[3] is None else r[3] for r in rows], dtype=float)
-        self.alarm = np.array([np.nan if r[4] is None else r[4] for r in rows], dtype=float)
-        self.max = np.full(n, -np.inf)
-        self.max_at = np.full(n, np.nan)
-        self.above_warning = np.zeros(n)
-        self.above_alarm = np.zeros(n)
-        self.results = 0
-
-    def add(self, stream_s: float, values: np.ndarray) -> None:
-        self.results += 1
-        higher = np.isfinite(values) & (values > self.max)
-        self.max[higher] = values[higher]
-        self.max_at[higher] = stream_s
-        # A comparison with NaN (no limit) is False: nothing is added.
-        self.above_warning += self.hop_s * (values >= self.warning)
-        self.above_alarm += self.hop_s * (values >= self.alarm)
-
-
-class History:
-    """Band values per result for the trend plot, in bounded memory: arrays
-    grown by doubling up to `rows`, then merged two rows into one (the larger
-    value kept) each time they fill, and later results pooled alike."""
-
-    def __init__(self, columns: int, rows: int = HISTORY_ROWS) -> None:
-        self.limit = max(2, rows - rows % 2)
-        self.t = np.empty(min(1024, self.limit))
-        self.v = np.empty((len(self.t), columns))
-        self.n = 0
-        self.stride = 1  # results per row
-        self._pool_t = 0.0
-        self._pool_v = np.full(columns, np.nan)
-        self._pooled = 0
-
-    def add(self, stream_s: float, values: np.ndarray) -> None:
-        if self._pooled == 0:
-            self._pool_t = stream_s
-            self._pool_v[:] = values
-        else:
-            np.fmax(self._pool_v, values, out=self._pool_v)
-        self._pooled += 1
-        if self._pooled == self.stride:
-            self._append(self._pool_t, self._pool_v)
-            self._pooled = 0
-
-    def _append(self, t: float, v: np.ndarray) -> None:
-        if self.n == len(self.t):
-            size = min(2 * len(self.t), self.limit)
-            self.t = np.resize(self.t, size)
-            self.v = np.resize(self.v, (size, self.v.shape[1]))
-        self.t[self.n] = t
-        self.v[self.n] = v
-        self.n += 1
-        if self.n == self.limit:
-            # Full: every two rows become one, and each later row pools twice as many results.
-            half = self.n // 2
-            self.t[:half] = self.t[0 : self.n : 2]
-            np.fmax(self.v[0 : self.n : 2], self.v[1 : self.n : 2], out=self.v[:half])
-            self.n = half
-            self.stride *= 2
-
-    def arrays(self) -> Tuple[np.ndarray, np.ndarray]:
-        """Stream times and values, (rows,) and (rows, columns), the partly
-        pooled last row included."""
-        if self._pooled:
-            return np.append(self.t[: self.n], self._pool_t), np.vstack([self.v[: self.n], self._pool_v])
-        return self.t[: self.n].copy(), self.v[: self.n].copy()
-
-
-class Worst(NamedTuple):
-    """The result with the highest band value relative to its warning limit
-    (alarm where a band has only that), or the highest value when no band
-    has a limit."""
-
-    score: float
-    relative: bool
-    pair: int
-    result: Result
-
-
-def _score(values: np.ndarray, reference: np.ndarray) -> Tuple[float, int]:
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratios = np.where(np.isfinite(reference), values / reference, np.nan)
-    if np.isfinite(ratios).any():
-        i = int(np.nanargmax(ratios))
-        return float(ratios[i]), i
-    if np.isfinite(values).any():
-        i = int(np.nanargmax(values))
-        return float(values[i]), i
-    return -math.inf, 0
-
-
-@dataclasses.dataclass
-class Replayed:
-    """What a replay measured, for the table and the plot."""
-
-    recording: str
-    config: Config
-    sample_rate: float
-    frames: int  # in the file
-    played: int  # file samples taken through the pipeline
-    lost: int  # samples put back from the gap notes
-    gaps: int
-    tally: Tally
-    events: Dict[Tuple[str, str, Optional[str]], int]
-    history: Optional[History]
-    worst: Optional[Worst]
-    stopped: bool
-
-    @property
-    def seconds(self) -> float:
-        return self.frames / self.sample_rate
-
-
 # -------------------------------------------------------------- the run
 
 
@@ -358,9 +231,9 @@ def replay(
             tally.add(result.stream_s, values)
             if history is not None:
                 history.add(result.stream_s, values)
-                score, pair = _score(values, reference)
-                if worst[0] is None or score > worst[0].score:
-                    worst[0] = Worst(score, bool(np.isfinite(reference).any()), pair, result)
+                rank, pair = score_of(values, reference)
+                if worst[0] is None or rank > worst[0].score:
+                    worst[0] = Worst(rank, bool(np.isfinite(reference).any()), pair, result)
             if progress is not None:
                 progress.update(source.position / fs)
 
@@ -411,142 +284,6 @@ class Progress:
             self.stream.write(" " * self._shown + "\r")
             self.stream.flush()
             self._shown = 0
-
-
-# ----------------------------------------------------------------- table
-
-
-def _cell(value: Optional[float], fmt: str) -> str:
-    return "-" if value is None or not math.isfinite(value) else format(value, fmt)
-
-
-def write_table(rep: Replayed, err: TextIO) -> None:
-    """The per band and channel table, and the health events counted."""
-    t = rep.tally
-    fs = rep.sample_rate
-    head = (f"replay of {rep.recording}: {rep.seconds:.6g} s at {fs:g} Hz, "
-            f"{len(rep.config.source.channels)} channel(s), {t.results} results, one every {t.hop_s:.6g} s")
-    if rep.gaps:
-        head += f"; {rep.lost} lost samples put back in {rep.gaps} gap(s)"
-    err.write(head + "\n")
-    if rep.stopped:
-        err.write(f"stopped after {rep.played / fs:.6g} of {rep.seconds:.6g} s\n")
-    if t.results == 0:
-        span = rep.config.spectrum.span / fs
-        err.write(f"no result: one needs {span:.6g} s of samples without a gap\n")
-    table = [("band", "channel", "unit", "warning", "alarm", "max", "max at s",
-              "above warning s", "above alarm s", "events")]
-    for i, (name, channel, unit, warning, alarm) in enumerate(t.rows):
-        table.append((
-            name, channel, unit, _cell(warning, "g"), _cell(alarm, "g"),
-            _cell(t.max[i], ".6g"), _cell(t.max_at[i], ".3f"),
-            _cell(t.above_warning[i] if warning is not None else None, ".3f"),
-            _cell(t.above_alarm[i] if alarm is not None else None, ".3f"),
-            str(rep.events.get(("band", name, channel), 0)),
-        ))
-    widths = [max(len(row[k]) for row in table) for k in range(len(table[0]))]
-    for row in table:
-        err.write("  ".join(cell.ljust(widths[k]) for k, cell in enumerate(row)).rstrip() + "\n")
-    health = sorted((k, n) for k, n in rep.events.items() if k[0] == "health")
-    total = sum(n for _, n in health)
-    detail = ", ".join(f"{name}{'/' + channel if channel else ''} {n}" for (_, name, channel), n in health)
-    err.write(f"health events: {total}" + (f" ({detail})" if detail else "") + "\n")
-    err.flush()
-
-
-# ------------------------------------------------------------------ plot
-
-
-def plot_available() -> bool:
-    try:
-        import matplotlib  # noqa: F401
-    except ImportError:
-        return False
-    return True
-
-
-def draw_plot(rep: Replayed, path: str) -> None:
-    """Band trends against their limits, one panel per band, and the
-    spectrum at the worst moment with every band of its channel marked."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    assert rep.history is not None
-    t, values = rep.history.arrays()
-    cfg = rep.config
-    tally = rep.tally
-    bands = []  # (band config, [pair indices])
-    for band in cfg.bands:
-        pairs = [i for i, row in enumerate(tally.rows) if row[0] == band.name]
-        bands.append((band, pairs))
-    fig = Figure(figsize=(10, 2.0 * len(bands) + 3.6))
-    FigureCanvasAgg(fig)
-    axes = fig.subplots(len(bands) + 1, 1, squeeze=False)[:, 0]
-    worst = rep.worst
-    for k, (ax, (band, pairs)) in enumerate(zip(axes, bands)):
-        if k:
-            ax.sharex(axes[0])
-        for i in pairs:
-            ax.plot(t, values[:, i], lw=0.9, label=tally.rows[i][1])
-        for limit, colour, label in ((band.warning, "tab:orange", "warning"), (band.alarm, "tab:red", "alarm")):
-            if limit is not None:
-                ax.axhline(limit, color=colour, ls="--", lw=1.0, label=f"{label} {limit:g}")
-        if worst is not None:
-            ax.axvline(worst.result.stream_s, color="0.5", ls=":", lw=1.0)
-        unit = quantity_unit(band.quantity, cfg.source.unit)
-        ax.set_title(f"{band.name}: {band.quantity}", loc="left", fontsize=9)
-        ax.set_ylabel(unit)
-        ax.set_ylim(bottom=0)
-        ax.grid(True, alpha=0.3)
-        ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=7, frameon=False)
-    if bands:
-        axes[len(bands) - 1].set_xlabel("stream time (s); dotted: the worst moment")
-    _draw_spectrum(axes[-1], rep)
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-
-
-def _draw_spectrum(ax: Any, rep: Replayed) -> None:
-    worst = rep.worst
-    if worst is None:
-        ax.text(0.5, 0.5, "no result: the recording is shorter than one result", ha="center",
-                transform=ax.transAxes)
-        ax.set_axis_off()
-        return
-    result = worst.result
-    band_value = result.bands[worst.pair]
-    band = rep.config.bands[[b.name for b in rep.config.bands].index(band_value.name)]
-    kind = band.spectrum
-    spectrum = result.envelope if kind == "envelope" and result.envelope is not None else result.spectrum
-    ch = list(rep.config.source.channels).index(band_value.channel)
-    amplitude = spectrum.rms_amplitude[ch][1:]
-    freqs = spectrum.freqs[1:]  # DC has no place on a log frequency axis
-    floor = amplitude[amplitude > 0].min() if (amplitude > 0).any() else 1e-12
-    # Log-log: 1x near the bottom and a band at kHz are both readable.
-    ax.loglog(freqs, np.maximum(amplitude, floor), lw=0.8, color="k")
-    names = {b.name: b for b in rep.config.bands}
-    shown = 0
-    for k, value in enumerate(result.bands):
-        if value.channel != band_value.channel or names[value.name].spectrum != kind:
-            continue
-        lo, hi = value.edges_hz
-        chosen = k == worst.pair
-        ax.axvspan(max(lo, freqs[0]), hi, color=f"C{k % 10}", alpha=0.35 if chosen else 0.12, lw=0)
-        # Labels at the band's middle on the log axis, staggered so nested bands stay readable.
-        ax.text(math.sqrt(max(lo, freqs[0]) * hi), 0.95 - 0.1 * (shown % 4), value.name,
-                transform=ax.get_xaxis_transform(), ha="center", va="top", fontsize=7,
-                fontweight="bold" if chosen else "normal")
-        shown += 1
-    ax.set_xlim(freqs[0], freqs[-1])
-    relative = (f", {worst.score:.3g} x its {'warning' if band.warning is not None else 'alarm'} limit"
-                if worst.relative and (band.warning is not None or band.alarm is not None) else "")
-    what = "envelope spectrum" if kind == "envelope" else "spectrum"
-    ax.set_title(f"{what} of {band_value.channel} at {result.stream_s:.1f} s, the worst moment: "
-                 f"{band_value.name} {band_value.value:.3g} {band_value.unit}{relative}", loc="left",
-                 fontsize=9)
-    ax.set_xlabel("frequency (Hz)")
-    ax.set_ylabel(f"RMS per line ({rep.config.source.unit})")
-    ax.grid(True, which="both", alpha=0.2)
 
 
 # --------------------------------------------------------------- command

@@ -30,7 +30,8 @@ from monitor.deliver.base import Sink
 from monitor.deliver.payloads import encode
 from monitor.service.monitor import Monitor
 from monitor.acquire.recording import RecordingWriter
-from monitor.commands.replay import History, replay
+from monitor.commands.replay import replay
+from monitor.commands.replay_tally import History
 from monitor.acquire.sources import open_source
 from monitor.acquire.sources.memory import ArraySource
 

@@ -17,19 +17,18 @@ from pathlib import Path
 
 import pytest
 
-from monitor.commands.view import (
+from monitor.commands.view import Pacer, ViewSink
+from monitor.commands.view_render import (
     BandRow,
     ChannelRow,
     EventRow,
     HealthRow,
     Snapshot,
-    Pacer,
-    ViewSink,
     bar,
     next_limit,
-    share_of_limit,
     plain_line,
     render,
+    share_of_limit,
 )
 
 if sys.version_info >= (3, 11):
