@@ -430,7 +430,7 @@ def main() -> int:
         config = with_scale(config)
         calib_chunks = chunks[: max(1, int(len(chunks) * min(1.0, CALIBRATION_S / seconds)))]
         warnings = calibrate(config, calib_chunks)
-        config = with_scale(make_config(closed, outage_dir, args.queue_limit, alerts))
+        config = with_scale(make_config(closed, outage_dir, args.queue_limit, warnings))
         print(f"  {wire_mb:.1f} MB of int16 frames, held in memory, made in {time.perf_counter() - t0:.1f} s; "
               "noise band warning limits (their medians): " + ", ".join(f"{ch} {v:.4g} g" for ch, v in warnings.items()))
 
@@ -447,7 +447,7 @@ def main() -> int:
             # The same sink with the broker up: what every event costs anyway.
             up_port = closed_port()
             up_dir = os.path.join(queue_root, "connected")
-            up_cfg = with_scale(make_config(up_port, up_dir, args.queue_limit, alerts))
+            up_cfg = with_scale(make_config(up_port, up_dir, args.queue_limit, warnings))
             broker = Mosquitto(program, up_port, workdir)
             try:
                 up_s, up_sink, up_ids, up_mem = run_real_sink(up_cfg, chunks)
