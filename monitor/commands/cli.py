@@ -9,12 +9,16 @@ output goes to stdout.
 import argparse
 import logging
 import os
+import signal
 import sys
+import threading
 from typing import TYPE_CHECKING, Dict, List, Optional, TextIO
 
 from .. import __version__
+from ..analyse.units import quantity_unit
 from ..config import Config, load
 from ..errors import BandwatchError, ConfigError
+from ..service.posix_signals import stop_on_signals
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..acquire.sources.base import Source
@@ -106,8 +110,6 @@ def _main(argv: Optional[List[str]]) -> int:
         print(f"bandwatch: config error: {exc}", file=sys.stderr)
         return EXIT_USAGE
     if args.command == "check":
-        from .check import print_check
-
         print_check(config, sys.stdout)
         return EXIT_OK
     if args.command == "bench":
@@ -133,9 +135,45 @@ def _main(argv: Optional[List[str]]) -> int:
         print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
               file=sys.stderr)
         return EXIT_USAGE
-    from .run import run_command
+    return _run(config)
 
-    return run_command(config)
+
+def _run(config: Config) -> int:
+    from ..deliver import open_sink
+    from ..service.notify import Notifier
+    from ..service.monitor import Monitor
+    from ..deliver.event_ids import EventIds
+
+    monitor = None
+
+    def on_hangup(_signum: int, _frame: object) -> None:
+        # systemctl reload: re-read the file in the measuring loop.
+        if monitor is not None:
+            log.info("received SIGHUP, reloading %s", config.path)
+            monitor.request_reload(lambda: load(config.path))
+
+    signal.signal(signal.SIGHUP, on_hangup)
+    source = open_source_or_fail(config)
+    if source is None:
+        return EXIT_FAILURE
+    ids = None
+    try:
+        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
+        sink = open_sink(config)
+        state_dir = config.mqtt.queue_dir if config.mqtt else None
+        monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier(), state_dir=state_dir)
+        log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
+                 len(config.source.channels), source.sample_rate)
+        with stop_on_signals(threading.Event(), "the monitor") as stop:
+            monitor.run(stop)
+    except BandwatchError as exc:
+        log.error("%s", exc)
+        return EXIT_FAILURE
+    finally:
+        source.close()
+        if ids is not None:
+            ids.close()
+    return EXIT_OK
 
 
 def _reset_baseline(config: Config, names: List[str]) -> int:
@@ -156,3 +194,72 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
     print(f"forgot {removed} learned baseline(s) in {store.path}; "
           "`systemctl reload bandwatch` makes the service learn them afresh")
     return EXIT_OK
+
+
+def print_check(config: Config, out: TextIO) -> None:
+    """The resolved config, as `bandwatch check` prints it."""
+    from ..acquire.sources import available
+    from ..analyse.bearings import bearing_orders
+    from ..analyse.windows import Window
+
+    src = config.source
+    spec = config.spectrum
+    w = out.write
+    w(f"config {config.path}: OK\n")
+    w(f"node: {config.node}\n")
+    rate = f"{src.sample_rate:g} Hz" if src.sample_rate > 0 else "rate from the recording"
+    w(f"source: {src.kind}, {len(src.channels)} channel(s) ({', '.join(src.channels)}), {rate}, unit {src.unit}\n")
+    if not available(src.kind):
+        w(f"  note: source kind {src.kind!r} is not available in this version; `run` will refuse it\n")
+    w(f"spectrum: {spec.window} window, {spec.size} samples, overlap {spec.overlap:g}, {spec.averages} average(s)\n")
+    if src.sample_rate > 0:
+        fs = src.sample_rate
+        window = Window(spec.window, spec.size)
+        w(f"  bin width {fs / spec.size:.6g} Hz, frame {spec.size / fs:.6g} s, "
+          f"result every {spec.hop / fs:.6g} s ({spec.hop} samples), each covering {spec.span / fs:.6g} s\n")
+        w(f"  noise bandwidth {window.enbw_bins * fs / spec.size:.6g} Hz ({window.enbw_bins:.4g} bins), "
+          f"Nyquist {fs / 2:g} Hz\n")
+    sp = config.speed
+    if sp.rpm is not None:
+        tracked = f", tracked in {sp.search_hz[0]:g}..{sp.search_hz[1]:g} Hz" if sp.track and sp.search_hz else ""
+        w(f"speed: {sp.rpm:g} rpm ({sp.rpm / 60:.6g} Hz) nominal{tracked}\n")
+    else:
+        w("speed: none given (order bands need [speed] rpm)\n")
+    for bearing in config.bearings:
+        orders = bearing_orders(bearing)
+        w(f"bearing {bearing.name}: {bearing.elements} elements, d {bearing.element_diameter:g}, "
+          f"D {bearing.pitch_diameter:g}, contact {bearing.contact_angle:g} deg; orders "
+          + ", ".join(f"{k.upper()} {v:.4g}" for k, v in orders.items()) + "\n")
+    if config.envelope is not None:
+        lo, hi = config.envelope.band_hz
+        w(f"envelope: carrier band {lo:g}..{hi:g} Hz, same frames and averaging as the spectrum\n")
+    w(f"bands: {len(config.bands)}\n")
+    if config.bands:
+        rows = [("name", "channels", "edges (Hz)", "quantity", "unit", "warning", "alarm", "hyst", "delay")]
+        for b in config.bands:
+            lo, hi = b.edges_hz(sp.nominal_hz)
+            edges = f"{lo:.6g}..{hi:.6g}"
+            if b.severity is not None:
+                edges += f" (ISO 10816-3 {b.severity})"
+            elif b.bearing is not None:
+                harmonic = f" x{b.harmonic}" if b.harmonic > 1 else ""
+                edges += f" ({b.bearing} {b.defect}{harmonic})"
+            elif b.orders is not None:
+                edges += f" ({b.orders[0]:g}..{b.orders[1]:g}x)"
+            if b.spectrum == "envelope":
+                edges += " envelope"
+            rows.append((
+                b.name, ",".join(b.channels), edges, b.quantity, quantity_unit(b.quantity, src.unit),
+                "-" if b.warning is None else f"{b.warning:g}", "-" if b.alarm is None else f"{b.alarm:g}",
+                f"{b.hysteresis:g}", f"{b.delay:g} s",
+            ))
+        widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+        for r in rows:
+            w("  " + "  ".join(cell.ljust(widths[i]) for i, cell in enumerate(r)).rstrip() + "\n")
+    w(f"health: stale after {config.health.stale:g} s without samples\n")
+    if config.mqtt is None:
+        w("output: JSON lines on stdout (no [mqtt] section)\n")
+    else:
+        m = config.mqtt
+        w(f"output: MQTT {m.host}:{m.port}, topics {m.prefix}/{config.node}/..., qos {m.qos}, "
+          f"summary every {m.summary_interval:g} s\n")
