@@ -29,7 +29,7 @@ from typing import Any, Dict, Iterator, List, Optional, Sequence
 import numpy as np
 
 from .. import __version__
-from ..deliver.payloads import parse_utc, utc_now, utc_text
+from ..deliver.payloads import utc_now, utc_text
 from ..errors import SourceError
 
 META_ID = b"bwmd"
@@ -48,6 +48,18 @@ READABLE = "PCM 8/16/24/32-bit, IEEE float 32/64-bit, plain or WAVE_FORMAT_EXTEN
 
 class RecordingError(SourceError):
     """A recording that cannot be written or read, naming the file and the problem."""
+
+
+def _parse_utc(text: Any) -> Optional[_dt.datetime]:
+    """The time in a `start_time` written by `utc_text` (a naive one taken as UTC)."""
+    if not isinstance(text, str):
+        return None
+    try:
+        # fromisoformat before Python 3.11 does not take the Z suffix.
+        when = _dt.datetime.fromisoformat(text[:-1] + "+00:00" if text.endswith("Z") else text)
+    except ValueError:
+        return None
+    return when if when.tzinfo is not None else when.replace(tzinfo=_dt.timezone.utc)
 
 
 # --------------------------------------------------------------------- writing
@@ -302,7 +314,7 @@ class RecordingReader:
 
     @property
     def start_time(self) -> Optional[_dt.datetime]:
-        return parse_utc(self.metadata.get("start_time"))
+        return _parse_utc(self.metadata.get("start_time"))
 
     @property
     def duration(self) -> float:

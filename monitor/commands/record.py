@@ -18,6 +18,7 @@ chunk is rewritten in place, with the same length, as gaps come and at the
 end. JSON allows the trailing spaces that fill it up.
 """
 
+import datetime as _dt
 import json
 import logging
 import math
@@ -30,7 +31,7 @@ from typing import Any, Dict, List, NamedTuple, Optional, TextIO
 import numpy as np
 
 from ..config import Config
-from ..deliver.payloads import utc_from_epoch
+from ..deliver.payloads import utc_text
 from ..errors import BandwatchError
 from ..acquire.recording import RecordingError, RecordingWriter
 from ..service.posix_signals import stop_on_signals
@@ -156,7 +157,7 @@ def record(
                 # it sent one, else arrival less the block's duration.
                 first = (block.timestamp_us / 1e6 if block.timestamp_us is not None
                          else time.time() - block.samples.shape[0] / rate)
-                notes.set(start_time=utc_from_epoch(first))
+                notes.set(start_time=utc_text(_dt.datetime.fromtimestamp(first, _dt.timezone.utc)))
                 dirty = True
             samples = block.samples[: target - written]
             if block.lost:

@@ -31,24 +31,6 @@ def utc_now() -> str:
     return utc_text(datetime.datetime.now(datetime.timezone.utc))
 
 
-def utc_from_epoch(seconds: float) -> str:
-    """A Unix time (seconds), as `utc_text` writes it."""
-    return utc_text(datetime.datetime.fromtimestamp(seconds, datetime.timezone.utc))
-
-
-def parse_utc(text: Any) -> Optional[datetime.datetime]:
-    """The aware time in a text `utc_text` wrote (a naive one is taken as
-    UTC); None for anything else."""
-    if not isinstance(text, str):
-        return None
-    try:
-        # fromisoformat before Python 3.11 does not take the Z suffix.
-        when = datetime.datetime.fromisoformat(text[:-1] + "+00:00" if text.endswith("Z") else text)
-    except ValueError:
-        return None
-    return when if when.tzinfo is not None else when.replace(tzinfo=datetime.timezone.utc)
-
-
 def num(value: Optional[float]) -> Optional[float]:
     """A JSON-safe number: None for missing or non-finite, else 6 digits."""
     if value is None:
