@@ -34,10 +34,11 @@ DEMO_RPM = float(DEMO_TOML["speed"]["rpm"])  # 1480
 DEMO_FS = float(DEMO_TOML["source"]["sample_rate"])  # 5120 Hz
 DEMO_SIZE = int(DEMO_TOML["spectrum"]["size"])  # 4096
 DEMO_OVERLAP = float(DEMO_TOML["spectrum"]["overlap"])  # 0.5
+DEMO_AVERAGES = int(DEMO_TOML["spectrum"]["averages"])  # 4
 
 TIME_RE = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z$")
 COMMON_FIELDS = {"node", "time", "stream_s"}
-SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "channels", "bands"}
+SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "speed_s", "channels", "bands"}
 SUMMARY_CHANNEL_FIELDS = {"rms", "peak", "crest", "kurtosis", "velocity_rms", "dominant_hz", "dominant_rms", "unit"}
 SUMMARY_BAND_FIELDS = {"name", "channel", "value", "unit", "level"}
 EVENT_FIELDS = COMMON_FIELDS | {
@@ -153,18 +154,33 @@ def test_check_prints_the_1x_band_edges_at_nominal_speed(check_output):
 
 
 def test_check_prints_the_spectral_resolution(check_output):
-    # "Bin spacing is fs/N" (shared/reference/check-values.md); one frame is
-    # N/fs seconds; a result comes every hop = N * (1 - overlap) samples.
+    # Line spacing fs/N, a frame N/fs seconds (common practice); a result
+    # every hop = N * (1 - overlap) samples (README, What it measures).
     bin_hz = DEMO_FS / DEMO_SIZE
     frame_s = DEMO_SIZE / DEMO_FS
     hop_s = DEMO_SIZE * (1 - DEMO_OVERLAP) / DEMO_FS
-    assert (bin_hz, frame_s, hop_s) == (1.25, 0.8, 0.4)
+    # The demo's own comments state these; they must stay true.
+    m = re.search(r"^size = \d+ +# ([\d.]+) Hz lines, ([\d.]+) s frames$", DEMO, flags=re.M)
+    assert m and (float(m.group(1)), float(m.group(2))) == (bin_hz, frame_s)
+    m = re.search(r"^overlap = [\d.]+ +# a result every ([\d.]+) s$", DEMO, flags=re.M)
+    assert m and float(m.group(1)) == hop_s
     m = re.search(r"bin width ([\d.]+) Hz", check_output)
     assert m and float(m.group(1)) == pytest.approx(bin_hz)
     m = re.search(r"frame ([\d.]+) s", check_output)
     assert m and float(m.group(1)) == pytest.approx(frame_s)
     m = re.search(r"result every ([\d.]+) s", check_output)
     assert m and float(m.group(1)) == pytest.approx(hop_s)
+
+
+def test_check_warns_of_a_search_range_wider_than_an_octave(tmp_path, check_output):
+    # An octave is 2:1 in frequency (common practice); 15..45 Hz holds 1x and
+    # 2x of the demo's 24.7 Hz, which only the harmonic guard tells apart.
+    path = demo_copy(tmp_path, (r"search_hz = .*", "search_hz = [15.0, 45.0]"))
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 0
+    warning = [line for line in result.stdout.splitlines() if "warning: search_hz" in line]
+    assert len(warning) == 1 and "15..45 Hz" in warning[0] and "3:1" in warning[0], result.stdout
+    assert "warning: search_hz" not in check_output  # the demo's 20..30 Hz is within an octave
 
 
 def test_check_writes_nothing_to_stderr_on_a_good_config():
@@ -277,6 +293,10 @@ def test_summary_fields_as_spec_section_4(run_60s):
     for s in summaries:
         assert set(s) == SUMMARY_FIELDS
         assert isinstance(s["speed_hz"], float)
+        # The demo tracks its speed: read at the middle of the result's
+        # samples (README, What it measures), half a span before stream_s.
+        span_s = (DEMO_SIZE + (DEMO_AVERAGES - 1) * DEMO_SIZE * (1 - DEMO_OVERLAP) - 1) / DEMO_FS
+        assert s["speed_s"] == pytest.approx(s["stream_s"] - span_s / 2, abs=1e-6)
         assert set(s["channels"]) == {"x", "y"}
         for channel in s["channels"].values():
             assert set(channel) == SUMMARY_CHANNEL_FIELDS
