@@ -31,7 +31,7 @@ QUANTITY_UNITS = {"velocity": "mm/s", "displacement": "um"}
 MAX_CHANNELS = 16
 # ISO 10816-3:2009 Annex A (carried into ISO 20816-3:2022) zone boundaries of
 # broadband RMS velocity, mm/s: alert at B/C, danger at C/D. Written from
-# memory of the standard (the shared check values say so too).
+# memory of the standard (tests/references.md names the table).
 SEVERITY_ZONES = {
     "group1-rigid": (4.5, 7.1),
     "group1-flexible": (7.1, 11.0),

@@ -1,4 +1,4 @@
-"""The `bandwatch` command, run for real in a subprocess (spec section 1).
+"""The `bandwatch` command, run for real in a subprocess (README, Commands and exit codes).
 
 Exit codes: 0 done; 2 bad usage or bad config (nothing started); 1 failure at
 run time. JSON goes to stdout, logs to stderr.
@@ -118,8 +118,7 @@ def _numbers(row: list) -> list:
     return out
 
 
-# Shaft frequency = rpm/60, common practice (shared/reference/check-values.md:
-# "Shaft frequency in Hz is rpm/60").
+# Shaft frequency = rpm/60 (common practice).
 SHAFT_HZ = DEMO_RPM / 60.0
 
 DEMO_BANDS = [

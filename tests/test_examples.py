@@ -10,8 +10,9 @@ from monitor.config import load
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 EXAMPLES = sorted(glob.glob(os.path.join(ROOT, "config", "*.toml")))
 
-# ISO 10816-3:2009 Annex A zone boundaries, mm/s RMS 10-1000 Hz, as given in
-# check-values.md (from memory there): B/C and C/D per group and support.
+# ISO 10816-3:2009, Annex A, Table A.1 (carried into ISO 20816-3:2022): zone
+# boundaries in mm/s RMS, 10-1000 Hz, B/C and C/D per group and support.
+# Written from memory of the standard, not read off a copy.
 ISO_10816_3 = {
     ("group 1", "rigid"): (4.5, 7.1),
     ("group 1", "flexible"): (7.1, 11.0),
@@ -67,7 +68,9 @@ rpm = {{rpm}}
 name = "overall"
 severity = "{name}"
 """
-    # ISO 10816-3 (check-values.md): 10-1000 Hz above 600 r/min, 2-1000 Hz for 120-600 r/min.
+    # ISO 10816-3:2009, its clause on measuring equipment (the broadband
+    # frequency range), from memory: 10-1000 Hz above 600 r/min, 2-1000 Hz
+    # for 120-600 r/min.
     fast = parse(text.format(rpm=1480.0)).bands[0]
     slow = parse(text.format(rpm=450.0)).bands[0]
     assert fast.hz == (10.0, 1000.0) and slow.hz == (2.0, 1000.0)

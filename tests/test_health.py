@@ -99,7 +99,7 @@ def test_rate_true_to_timestamps_is_quiet():
 
 
 def test_alias_guard_fires_when_energy_sits_near_nyquist():
-    # check-values.md (aliasing): a tone at f sampled at fs shows at
+    # Sampling theorem (common practice): a tone at f sampled at fs shows at
     # |f - k fs| folded into [0, fs/2]; a tone at 1.08 fs lands at 0.08 fs,
     # one at 0.54 fs lands at 0.46 fs, close under Nyquist, where the guard
     # must warn.

@@ -142,16 +142,17 @@ def test_time_statistics_and_dominant_peak():
     monitor, sink = run(config, x)
     last = sink.of("summary")[-1]
     cx = last["channels"]["x"]
-    # Sine: RMS A/sqrt(2) given directly here as 2.0; crest sqrt(2); kurtosis 1.5
-    # (common practice), to 0.5 % on a record of whole samples, not whole
-    # cycles; the peak read between lines within 0.01 line, its RMS within
-    # 0.1 % (Grandke 1983, check-values.md).
+    # Sine, analytic: RMS given directly here as 2.0; crest sqrt(2);
+    # kurtosis 1.5 (mean of sin^4 over the mean of sin^2 squared), to 0.5 %
+    # on a record of whole samples, not whole cycles. The peak: Hann at 50
+    # lines and more reads within 0.0001 line and 0.001 % (README, peak
+    # table); 0.02 Hz and 0.1 % leave room for the three averaged frames.
     assert cx["rms"] == pytest.approx(2.0, rel=5e-3)
     assert cx["crest"] == pytest.approx(np.sqrt(2), rel=5e-3)
     assert cx["kurtosis"] == pytest.approx(1.5, rel=5e-3)
     assert cx["dominant_hz"] == pytest.approx(100.4, abs=0.02)
     assert cx["dominant_rms"] == pytest.approx(2.0, rel=1e-3)
-    # Velocity 10-1000 Hz: v = a / (2 pi f) (check-values.md).
+    # Velocity 10-1000 Hz, analytic: v = a / (2 pi f).
     assert cx["velocity_rms"] == pytest.approx(2.0 / (2 * np.pi * 100.4) * 1e3, rel=2e-3)
     assert last["channels"]["y"]["dominant_hz"] == pytest.approx(250.0, abs=0.02)
     assert cx["unit"] == "m/s2"
@@ -173,7 +174,7 @@ def test_results_every_hop_with_stream_time_from_samples():
     n = spec.span + 10 * spec.hop
     monitor, sink = run(config, tones(n, [[(50.0, 1.0)], [(50.0, 1.0)]]), block=333)
     assert monitor.results == 11
-    # stream_s of a result is the time of its last sample (spec section 4).
+    # stream_s of a result is the time of its last sample (README, What is published).
     assert monitor.latest.stream_s == pytest.approx((n - 1) / FS)
 
 
@@ -209,7 +210,7 @@ delay = 1.0
 
 def expected_events(x, config, limit_rows):
     """Event times computed independently: scipy.signal.welch on the span of
-    every result, summed over the band's lines, then the rule of spec section 4
+    every result, summed over the band's lines, then the level rule (README, What is published)
     applied step by step."""
     spec = config.spectrum
     times, values = [], []
@@ -329,7 +330,7 @@ def test_stale_fault_raised_and_cleared():
         ("stale", "health", "fault", "normal"),
         ("stale", "health", "normal", "fault"),
     ]
-    # Health events carry what they measured and null limits (spec section 4).
+    # Health events carry what they measured and null limits (README, What is published).
     assert events[0]["value"] >= 2.0 and events[0]["alert"] is None and events[0]["danger"] is None
 
 
