@@ -486,7 +486,7 @@ NEWLINE_CASES = {
 }
 
 
-# Sections and keys beyond the interface's example, in its spirit (README).
+# Sections and keys beyond the basic example (README, Config reference).
 BEARING = """
 [envelope]
 band_hz = [1000.0, 2000.0]
