@@ -154,6 +154,7 @@ def test_check_prints_each_band(check_output, name, edges, quantity, unit, alert
 
 
 def test_check_prints_the_1x_band_edges_at_nominal_speed(check_output):
+    # 0.8 and 1.2 orders of 1480 rpm / 60 = 24.667 Hz (common practice), by hand.
     lo, hi = _edges(_band_row(check_output, "1x"))
     assert lo == pytest.approx(19.7333, abs=1e-4)
     assert hi == pytest.approx(29.6, abs=1e-4)

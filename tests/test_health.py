@@ -1,4 +1,10 @@
-"""Health checks fed by hand-made blocks, counters and spectra."""
+"""Health checks fed by hand-made blocks, counters and spectra.
+
+The checks, their limits, windows and delays are this project's choices
+(README, `[health]`); every expected time, share and count below is worked
+by hand from them on invented signals. Facts of the trade are marked common
+practice where they are used.
+"""
 
 import numpy as np
 import pytest

@@ -42,6 +42,7 @@ def collect(seconds=8.0, **replace):
 
 def test_runs_for_its_seconds_and_counts_samples():
     source, x = collect(seconds=2.5)
+    # seconds times the sample rate, 4096 Hz, rows; one column per channel.
     assert x.shape == (int(2.5 * 4096), 2)
     assert source.samples == x.shape[0]
 
