@@ -168,6 +168,29 @@ def test_a_silent_channel_has_no_dominant_line():
     assert silent["rms"] == 0.0
 
 
+def test_a_tracked_speed_is_stamped_where_it_was_measured():
+    # Analytic: a run-up whose phase is 2 pi (f0 t + r t^2 / 2) turns at
+    # f0 + r t at time t. The speed read from a result describes the middle
+    # of its samples (README, What it measures): speed_s, half a span before
+    # stream_s, where the run-up is r * span / 2 = 0.37 Hz slower.
+    f0, r = 20.0, 1.0
+    n = int(8.0 * FS)
+    t = np.arange(n) / FS
+    x = np.sqrt(2) * np.sin(2 * np.pi * (f0 * t + r * t**2 / 2))
+    config = make(extra="track = true\nsearch_hz = [15.0, 30.0]\n")
+    monitor, sink = run(config, np.column_stack([x, x]))
+    result = monitor.latest
+    span_s = (config.spectrum.span - 1) / FS
+    assert result.speed_s == pytest.approx(result.stream_s - span_s / 2, abs=1e-9)
+    assert result.speed_hz == pytest.approx(f0 + r * result.speed_s, abs=0.05)
+    assert abs(result.speed_hz - (f0 + r * result.stream_s)) > 0.3
+    first = sink.of("summary")[0]
+    assert first["speed_s"] == pytest.approx(first["stream_s"] - span_s / 2, abs=1e-6)
+    # A nominal speed was measured nowhere.
+    _, quiet = run(make(), np.column_stack([x, x]))
+    assert quiet.of("summary")[0]["speed_s"] is None
+
+
 def test_results_every_hop_with_stream_time_from_samples():
     config = make(extra="")
     spec = config.spectrum
