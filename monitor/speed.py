@@ -12,8 +12,8 @@ its fundamental can both lie in it, so the tracker takes the fundamental,
 not the strongest line: while the line nearest f/2 or f/3 of the chosen peak
 holds a clear peak of its own (a local maximum 10 dB above the range's
 median, within 40 dB of the chosen peak), that peak is chosen instead, down
-to the lowest member of the series. A range narrower than an octave cannot
-hold both, and the guard never fires there.
+to the lowest member of the series. A range within an octave cannot hold
+both, and there the guard finds nothing.
 """
 
 import math
@@ -87,9 +87,10 @@ def _fundamental(part: np.ndarray, j: int, lo: int, floor: float) -> int:
     while found:
         found = False
         for n in _SUBHARMONICS:
-            centre = round((lo + j) / n) - lo
-            # The nearest line to f/n and one either side; never the range's edge lines.
-            near = [c for c in (centre - 1, centre, centre + 1) if 0 < c < len(inner) - 1]
+            target = (lo + j) / n - lo  # f/n, as an index into inner
+            centre = round(target)
+            # Lines within one line of f/n; never the range's edge lines.
+            near = [c for c in (centre - 1, centre, centre + 1) if 0 < c < len(inner) - 1 and abs(c - target) <= 1.0]
             if not near:
                 continue
             c = max(near, key=lambda i: inner[i])
