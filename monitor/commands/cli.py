@@ -51,28 +51,40 @@ def open_source_or_fail(config: Config) -> "Optional[Source]":
 _NOT_YET: Dict[str, str] = {}
 
 
+LOG_LEVELS = ["debug", "info", "warning", "error"]
+
+
 def _parser() -> argparse.ArgumentParser:
     # argparse itself exits with 2 on bad usage, as the interface wants.
     p = argparse.ArgumentParser(prog="bandwatch", description="Vibration band monitor for rotating machines.")
     p.add_argument("--version", action="version", version=f"bandwatch {__version__}")
-    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+    p.add_argument("--log-level", default="info", choices=LOG_LEVELS,
                    help="lowest level of log line written to stderr (default: info)")
+    # The same option after the subcommand: SUPPRESS leaves the value given
+    # before it (or the default) alone when it is not repeated there.
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--log-level", default=argparse.SUPPRESS, choices=LOG_LEVELS,
+                        help="lowest level of log line written to stderr (default: info)")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
     def with_config(name: str, text: str) -> argparse.ArgumentParser:
-        cmd = sub.add_parser(name, help=text, description=text)
+        cmd = sub.add_parser(name, help=text, description=text, parents=[common])
         cmd.add_argument("-c", "--config", required=True, metavar="FILE", help="the TOML config file")
         return cmd
 
     with_config("run", "run the monitor in the foreground until SIGTERM or SIGINT")
     with_config("check", "validate the config and print the resolved bands and spectral resolution")
     replay = with_config("replay", "run the pipeline on a recording as fast as possible")
-    replay.add_argument("recording", metavar="REC")
-    replay.add_argument("--plot", metavar="PNG")
+    replay.add_argument("recording", metavar="REC", help="the WAV recording to replay (its rate, channel "
+                        "count and samples replace the config's [source])")
+    replay.add_argument("--plot", metavar="PNG", help="also draw band trends against their limits and the "
+                        "spectrum at the worst moment into this PNG file (needs matplotlib)")
     record = with_config("record", "capture the configured source to a recording")
-    record.add_argument("-o", "--output", required=True, metavar="REC")
-    record.add_argument("--seconds", required=True, type=float, metavar="S")
+    record.add_argument("-o", "--output", required=True, metavar="REC",
+                        help="the new WAV file to write (an existing file is never overwritten)")
+    record.add_argument("--seconds", required=True, type=float, metavar="S",
+                        help="seconds of samples to record (counted from samples, not the clock)")
     with_config("view", "live terminal view of band levels against limits")
     reset = with_config("reset-baseline", "forget learned baselines, so the service learns them afresh "
                         "(then: systemctl reload bandwatch)")

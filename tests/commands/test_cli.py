@@ -502,3 +502,47 @@ def test_console_script_version():
                             text=True, timeout=30)
     assert result.returncode == 0
     assert result.stdout.strip() == f"bandwatch {__version__}"
+
+
+# ---------------------------------------------------------------------------
+# options: global ones anywhere, help for every argument
+
+
+def _finite_demo(tmp_path: Path, seconds: float = 3.0) -> Path:
+    return demo_copy(tmp_path, (r"realtime = .*", "realtime = false"),
+                     (r"sim_seconds = .*", f"sim_seconds = {seconds}"))
+
+
+@pytest.mark.parametrize("where", ["before", "after"])
+def test_log_level_works_before_and_after_the_subcommand(tmp_path, where):
+    # Python's logging writes the level name in each line (our format: time LEVEL name: message).
+    path = _finite_demo(tmp_path)
+    plain = bandwatch("run", "-c", str(path), timeout=60)
+    assert plain.returncode == 0 and " INFO " in plain.stderr, plain.stderr  # the default level is info
+    option = ["--log-level", "warning"]
+    args = option + ["run", "-c", str(path)] if where == "before" else ["run", "-c", str(path)] + option
+    result = bandwatch(*args, timeout=60)
+    assert result.returncode == 0, result.stderr
+    assert " INFO " not in result.stderr
+
+
+def test_log_level_after_the_subcommand_wins_over_the_one_before(tmp_path):
+    path = _finite_demo(tmp_path)
+    result = bandwatch("--log-level", "info", "run", "-c", str(path), "--log-level", "error", timeout=60)
+    assert result.returncode == 0 and " INFO " not in result.stderr, result.stderr
+
+
+def test_every_subcommand_lists_log_level_and_every_argument_has_help():
+    from monitor.commands.cli import _parser
+
+    parser = _parser()
+    subparsers = next(a for a in parser._actions if isinstance(a, __import__("argparse")._SubParsersAction))
+    assert set(subparsers.choices) >= {"run", "check", "replay", "record", "view", "reset-baseline", "bench"}
+    for name in subparsers.choices:
+        text = bandwatch(name, "--help", timeout=30).stdout
+        assert "--log-level" in text, name
+    for name, sub in [("", parser)] + list(subparsers.choices.items()):
+        for action in sub._actions:
+            if isinstance(action, __import__("argparse")._SubParsersAction):
+                continue
+            assert action.help, f"bandwatch {name}: {action.option_strings or action.dest} has no help text"
