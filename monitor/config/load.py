@@ -8,6 +8,7 @@ not silently fall back to a default.
 """
 
 import math
+import os
 import re
 import sys
 from typing import Any, Dict, List, Optional, Tuple
@@ -15,6 +16,7 @@ from typing import Any, Dict, List, Optional, Tuple
 from ..analyse.bearings import DEFECTS, bearing_orders
 from ..analyse.units import iso_velocity_hz
 from ..errors import ConfigError
+from .paths import resolve_paths
 from .rates import order_edge_problem
 from .schema import (
     FORMATS,
@@ -519,7 +521,8 @@ def parse(text: str, file: str = "<config>") -> Config:
 
 
 def load(path: str) -> Config:
-    """Read and check the config file at `path`."""
+    """Read and check the config file at `path`; relative paths in it are
+    taken from its folder (`paths.py`)."""
     try:
         with open(path, "rb") as fh:
             raw = fh.read()
@@ -529,4 +532,4 @@ def load(path: str) -> Config:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ConfigError(path, "", f"not UTF-8 text (byte {exc.start})") from None
-    return parse(text, path)
+    return resolve_paths(parse(text, path), os.path.dirname(path))
