@@ -34,6 +34,16 @@ def usage(command: str, message: str, err: TextIO) -> int:
     return EXIT_USAGE
 
 
+def load_config(path: str, fit_recording: bool = True) -> Config:
+    """The config at `path`; a file source's recording is opened and checked
+    against it (rate, channels, Nyquist, scale) unless `fit_recording` is
+    False. Raises ConfigError."""
+    from ..acquire.recording_fit import fit_file_source
+
+    config = load(path)
+    return fit_file_source(config) if fit_recording else config
+
+
 def open_source_or_fail(config: Config) -> "Optional[Source]":
     """The configured source, opened; or None once the reason is logged, and
     the command exits with EXIT_FAILURE."""
@@ -80,6 +90,9 @@ def _parser() -> argparse.ArgumentParser:
                         "count and samples replace the config's [source])")
     replay.add_argument("--plot", metavar="PNG", help="also draw band trends against their limits and the "
                         "spectrum at the worst moment into this PNG file (needs matplotlib)")
+    replay.add_argument("--scale", metavar="S", help="what one stored value of a WAV from another tool is "
+                        "in the unit (g per count for integers: full-scale range / 2^(bits-1)); one number, "
+                        "or one per channel separated by commas; instead of [source] scale")
     record = with_config("record", "capture the configured source to a recording")
     record.add_argument("-o", "--output", required=True, metavar="REC",
                         help="the new WAV file to write (an existing file is never overwritten)")
@@ -117,7 +130,10 @@ def _main(argv: Optional[List[str]]) -> int:
     args = _parser().parse_args(argv)
     _setup_logging(args.log_level)
     try:
-        config = load(args.config)
+        # replay stands the recording in for any source, and bench and
+        # reset-baseline never open it: only the others need a file
+        # source's recording, checked now.
+        config = load_config(args.config, fit_recording=args.command in ("run", "check", "view", "record"))
     except ConfigError as exc:
         print(f"bandwatch: config error: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -142,7 +158,7 @@ def _main(argv: Optional[List[str]]) -> int:
     if args.command == "replay":
         from .replay import replay_command
 
-        return replay_command(config, args.recording, args.plot)
+        return replay_command(config, args.recording, args.plot, scale=args.scale)
     if args.command in _NOT_YET:
         print(f"bandwatch: {args.command}: {_NOT_YET[args.command]} is not available in this version",
               file=sys.stderr)
@@ -162,7 +178,7 @@ def _run(config: Config) -> int:
         # systemctl reload: re-read the file in the measuring loop.
         if monitor is not None:
             log.info("received SIGHUP, reloading %s", config.path)
-            monitor.request_reload(lambda: load(config.path))
+            monitor.request_reload(lambda: load_config(config.path))
 
     signal.signal(signal.SIGHUP, on_hangup)
     source = open_source_or_fail(config)
@@ -208,6 +224,17 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
     return EXIT_OK
 
 
+def _recording_line(config: Config) -> str:
+    """What `check` says of a file source's recording (already fitted)."""
+    from ..acquire.recording import open_recording
+
+    src = config.source
+    with open_recording(src.path) as reader:
+        kind = f"{reader.duration:.6g} s of {reader.sample_type}"
+    scales = ", ".join(f"{s:.6g}" for s in sorted(set(src.scale)))
+    return f"  recording {src.path}: {kind}; one stored value is {scales} {src.unit}\n"
+
+
 def print_check(config: Config, out: TextIO) -> None:
     """The resolved config, as `bandwatch check` prints it."""
     from ..acquire.sources import available
@@ -221,6 +248,8 @@ def print_check(config: Config, out: TextIO) -> None:
     w(f"node: {config.node}\n")
     rate = f"{src.sample_rate:g} Hz" if src.sample_rate > 0 else "rate from the recording"
     w(f"source: {src.kind}, {len(src.channels)} channel(s) ({', '.join(src.channels)}), {rate}, unit {src.unit}\n")
+    if src.kind == "file":
+        w(_recording_line(config))
     if not available(src.kind):
         w(f"  note: source kind {src.kind!r} is not available in this version; `run` will refuse it\n")
     w(f"spectrum: {spec.window} window, {spec.size} samples, overlap {spec.overlap:g}, {spec.averages} average(s)\n")

@@ -1,7 +1,9 @@
 """`bandwatch replay`: the whole pipeline on a recording, as fast as the CPU allows.
 
-The config's spectrum, speed, bands, rules and health apply; only the source
-is swapped for the recording (kind "file", never paced). What goes where:
+The config's spectrum, speed, bands, rules and health apply; only the source,
+of whatever kind, is swapped for the recording (kind "file", never paced),
+which gives the rate, channel count and samples (`acquire/recording_fit.py`;
+`--scale` says what a count of an integer WAV from another tool is). What goes where:
 
 - stdout: every event, one JSON payload per line, field for field what the
   live run publishes on the event topic. Nothing else.
@@ -45,13 +47,14 @@ from typing import Any, Dict, List, Optional, TextIO, Tuple
 
 import numpy as np
 
-from ..analyse.units import TO_SI, quantity_unit
-from ..config import Config, check_rate
+from ..analyse.units import quantity_unit
+from ..config import Config
 from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError, ConfigError
 from ..deliver.payloads import encode
 from ..service.monitor import Monitor, Result
 from ..acquire.recording import RecordingError, RecordingReader, open_recording
+from ..acquire.recording_fit import fit
 from ..service.posix_signals import stop_on_signals
 from ..acquire.sources import open_source
 from ..acquire.block import Block
@@ -166,33 +169,12 @@ class _EventSink(Sink):
 # -------------------------------------------------------------- the run
 
 
-def replay_config(config: Config, reader: RecordingReader) -> Config:
-    """The config with its source replaced by the recording. Raises
-    ConfigError when the config does not fit the recording."""
-    src = config.source
-    rate = float(reader.sample_rate)
-    if reader.channels != len(src.channels):
-        raise ConfigError(config.path, "source.channels",
-                          f"lists {len(src.channels)} channel(s) ({', '.join(src.channels)}), but the "
-                          f"recording {reader.path} holds {reader.channels}")
-    if src.sample_rate > 0 and src.sample_rate != rate:
-        raise ConfigError(config.path, "source.sample_rate",
-                          f"is {src.sample_rate:g} Hz, but the recording {reader.path} was made at "
-                          f"{reader.sample_rate} Hz; set it to {reader.sample_rate} (or use kind = \"file\")")
-    if src.sample_rate <= 0:
-        check_rate(config, rate)
-    ours = "bandwatch_version" in reader.metadata
-    scale = src.scale
-    if ours:
-        unit = reader.unit
-        if unit not in TO_SI:
-            raise RecordingError(f"{reader.path}: metadata unit={unit!r} is not one of {', '.join(TO_SI)}")
-        # Values are already in the recorded unit; convert if the config differs.
-        scale = (TO_SI[unit] / TO_SI[src.unit],) * len(src.channels)
-    source = dataclasses.replace(src, kind="file", path=reader.path, realtime=False, sample_rate=rate,
-                                 scale=scale, simulator=None)
+def replay_config(config: Config, reader: RecordingReader, scale: Optional[Tuple[float, ...]] = None) -> Config:
+    """The config, whatever its source kind, with its source replaced by the
+    recording (`recording_fit.py`). Raises ConfigError when they do not fit."""
+    fitted = fit(config, reader, scale, replacing=True)
     # A replay writes no captures: the recording already holds every sample.
-    return dataclasses.replace(config, source=source, capture=None)
+    return dataclasses.replace(fitted, capture=None)
 
 
 def replay(
@@ -202,13 +184,15 @@ def replay(
     stop: Optional[threading.Event] = None,
     keep_history: bool = False,
     progress: Optional["Progress"] = None,
+    scale: Optional[Tuple[float, ...]] = None,
 ) -> Replayed:
-    """Run the pipeline on `recording`, events to `out`. Raises ConfigError
-    or RecordingError when the two do not fit (nothing started), and
-    BandwatchError on a failure while reading."""
+    """Run the pipeline on `recording`, events to `out`; `scale` (unit per
+    stored value, per channel) stands in for `[source] scale`. Raises
+    ConfigError or RecordingError when the two do not fit (nothing
+    started), and BandwatchError on a failure while reading."""
     stop = stop or threading.Event()
     with open_recording(recording) as reader:
-        cfg = replay_config(config, reader)
+        cfg = replay_config(config, reader, scale)
         gaps = _gap_notes(reader)
         frames = reader.frames
     spec = cfg.spectrum
@@ -385,11 +369,30 @@ def _draw_spectrum(ax: Any, rep: Replayed) -> None:
 # --------------------------------------------------------------- command
 
 
+def parse_scale(text: str, channels: int) -> Tuple[float, ...]:
+    """`--scale`: one number, or one per channel separated by commas.
+    Raises ValueError naming what is wrong."""
+    try:
+        values = [float(part) for part in text.split(",")]
+    except ValueError:
+        raise ValueError(f"--scale {text!r} is not a number or a comma-separated list of numbers") from None
+    if len(values) not in (1, channels) or not all(math.isfinite(v) and v != 0 for v in values):
+        raise ValueError(f"--scale {text!r}: expected one non-zero number, or {channels} (one per channel)")
+    return tuple(values) * (channels if len(values) == 1 else 1)
+
+
 def replay_command(config: Config, recording: str, plot: Optional[str] = None,
-                   out: Optional[TextIO] = None, err: Optional[TextIO] = None) -> int:
-    """`bandwatch replay -c FILE REC [--plot PNG]`; returns the exit code."""
+                   out: Optional[TextIO] = None, err: Optional[TextIO] = None,
+                   scale: Optional[str] = None) -> int:
+    """`bandwatch replay -c FILE REC [--plot PNG] [--scale S]`; returns the exit code."""
     out = out or sys.stdout
     err = err or sys.stderr
+    factors = None
+    if scale is not None:
+        try:
+            factors = parse_scale(scale, len(config.source.channels))
+        except ValueError as exc:
+            return usage("replay", str(exc), err)
     if plot is not None:
         if not plot_available():
             return usage("replay", f"--plot needs matplotlib, which is not installed: {PLOT_HINT}", err)
@@ -405,7 +408,8 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
             pass  # replay() reports it below
     with stop_on_signals(threading.Event(), "the replay") as stop:
         try:
-            rep = replay(config, recording, out, stop, keep_history=plot is not None, progress=progress)
+            rep = replay(config, recording, out, stop, keep_history=plot is not None, progress=progress,
+                         scale=factors)
         except (ConfigError, RecordingError) as exc:
             if progress is not None:
                 progress.clear()

@@ -134,7 +134,8 @@ def _read_source(t: Table, speed_rpm: Optional[float]) -> SourceConfig:
             raise t.bad("scale", value, expected)
 
     out: Dict[str, Any] = dict(
-        kind=kind, sample_rate=sample_rate, channels=tuple(channels), unit=unit, scale=scale
+        kind=kind, sample_rate=sample_rate, channels=tuple(channels), unit=unit, scale=scale,
+        scale_given=t.has("scale"),
     )
     if kind in ("serial", "tcp-client", "tcp-server", "udp"):
         out["format"] = t.get_str("format", "frame", FORMATS)

@@ -55,6 +55,9 @@ class SourceConfig:
     path: str = ""
     realtime: bool = False
     simulator: Optional[SimulatorConfig] = None
+    # Whether `scale` was written in the file: integer recordings are only
+    # read with a scale someone chose (the default 1.0 is counts as units).
+    scale_given: bool = False
 
     @property
     def nyquist(self) -> float:

@@ -546,3 +546,90 @@ def test_every_subcommand_lists_log_level_and_every_argument_has_help():
             if isinstance(action, __import__("argparse")._SubParsersAction):
                 continue
             assert action.help, f"bandwatch {name}: {action.option_strings or action.dest} has no help text"
+
+
+# ---------------------------------------------------------------------------
+# a file source: check opens its recording
+
+
+FILE_SOURCE = """\
+[node]
+name = "rig-9"
+[source]
+kind = "file"
+path = "{path}"
+channels = ["x", "y"]
+unit = "g"
+{scale}
+[spectrum]
+size = 1024
+[[band]]
+name = "overall"
+hz = [10.0, 1000.0]
+quantity = "velocity"
+warning = 2.8
+"""
+
+
+def _pcm_wav(path: Path, rate: int, channels: int = 2, width: int = 2, seconds: float = 2.0) -> Path:
+    """A silent PCM file as another tool writes it (the standard library's wave module)."""
+    import wave
+
+    with wave.open(str(path), "wb") as w:
+        w.setnchannels(channels)
+        w.setsampwidth(width)
+        w.setframerate(rate)
+        w.writeframes(b"\0" * (width * channels * int(rate * seconds)))
+    return path
+
+
+def _file_config(tmp_path: Path, rec: Path, scale: str = "scale = 0.0001") -> Path:
+    path = tmp_path / "file.toml"
+    path.write_text(FILE_SOURCE.format(path=rec, scale=scale), encoding="utf-8")
+    return path
+
+
+def test_check_opens_a_file_sources_recording_and_prints_its_rate(tmp_path):
+    rec = _pcm_wav(tmp_path / "run.wav", 4096)
+    result = bandwatch("check", "-c", str(_file_config(tmp_path, rec)), timeout=30)
+    assert result.returncode == 0, result.stderr
+    assert "4096 Hz" in result.stdout and "Nyquist 2048 Hz" in result.stdout  # fs / 2 (common practice)
+    assert "2 s of int16" in result.stdout and "0.0001 g" in result.stdout
+
+
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_a_missing_recording_exits_2(tmp_path, command):
+    # Exit 2 (bad config, nothing started; README, Commands and exit codes):
+    # systemd does not restart a service for it.
+    missing = tmp_path / "gone.wav"
+    result = bandwatch(command, "-c", str(_file_config(tmp_path, missing)), timeout=30)
+    assert result.returncode == 2
+    assert "source.path" in result.stderr and "gone.wav" in result.stderr
+    assert result.stdout == ""
+
+
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_a_band_above_the_recordings_nyquist_exits_2(tmp_path, command):
+    # Recorded at 1600 Hz: Nyquist is 800 Hz (fs / 2, common practice), below the 1000 Hz edge.
+    rec = _pcm_wav(tmp_path / "slow.wav", 1600)
+    result = bandwatch(command, "-c", str(_file_config(tmp_path, rec)), timeout=30)
+    assert result.returncode == 2
+    assert "band[1].hz" in result.stderr and "800" in result.stderr
+    assert result.stdout == ""
+
+
+def test_a_recording_with_other_channels_exits_2(tmp_path):
+    rec = _pcm_wav(tmp_path / "three.wav", 4096, channels=3)
+    result = bandwatch("check", "-c", str(_file_config(tmp_path, rec)), timeout=30)
+    assert result.returncode == 2
+    assert "source.channels" in result.stderr and "holds 3" in result.stderr
+
+
+@pytest.mark.parametrize("command", ["check", "run"])
+def test_an_integer_recording_without_scale_exits_2(tmp_path, command):
+    rec = _pcm_wav(tmp_path / "counts.wav", 4096)
+    result = bandwatch(command, "-c", str(_file_config(tmp_path, rec, scale="")), timeout=30)
+    assert result.returncode == 2
+    # The README's formula, and its example: +-2 g over int16 is 2 / 2^15 g per count.
+    assert "source.scale" in result.stderr and "2^(bits-1)" in result.stderr
+    assert f"{2 / 2 ** 15:.6g}" in result.stderr

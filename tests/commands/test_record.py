@@ -327,7 +327,9 @@ def test_a_broken_config_exits_2(tmp_path):
     assert not out.exists()
 
 
-def test_a_source_that_cannot_open_exits_1(tmp_path):
+def test_a_missing_recording_of_a_file_source_is_a_config_error(tmp_path):
+    # The recording is part of the config: exit 2, like any bad config
+    # (README, Commands and exit codes), so systemd does not restart in vain.
     config = write_config(tmp_path, f"""
 [node]
 name = "bench"
@@ -338,6 +340,29 @@ channels = ["a"]
 """)
     out = tmp_path / "x.wav"
     result = bandwatch("record", "-c", config, "-o", out, "--seconds", "1", timeout=30)
+    assert result.returncode == 2
+    assert "missing.wav" in result.stderr and "source.path" in result.stderr
+    assert not out.exists()
+
+
+def test_a_source_that_cannot_open_exits_1(tmp_path):
+    # A port another process holds: a fault of the moment, not of the config.
+    with socket.socket() as holder:
+        holder.bind(("127.0.0.1", 0))
+        holder.listen(1)
+        port = holder.getsockname()[1]
+        config = write_config(tmp_path, f"""
+[node]
+name = "bench"
+[source]
+kind = "tcp-server"
+port = {port}
+sample_rate = 1000.0
+channels = ["a"]
+scale = 0.001
+""")
+        out = tmp_path / "x.wav"
+        result = bandwatch("record", "-c", config, "-o", out, "--seconds", "1", timeout=30)
     assert result.returncode == 1
-    assert "missing.wav" in result.stderr
+    assert str(port) in result.stderr
     assert not out.exists()
