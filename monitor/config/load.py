@@ -373,6 +373,7 @@ def _read_health(t: Table) -> HealthConfig:
         flatline=t.get_float("flatline", 5.0, lo=0.0, lo_open=True, hi=86400.0),
         rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
         nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
+        implausible=t.get_float("implausible", 1000.0, lo=0.0, lo_open=True, hi=1e9),
     )
     t.finish()
     return health

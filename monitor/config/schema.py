@@ -149,6 +149,9 @@ class HealthConfig:
     flatline: float = 5.0  # s without any change on a channel
     rate: float = 0.01  # relative disagreement of timestamps with sample_rate
     nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
+    # g: no vibration accelerometer measures this much (README, [health]);
+    # a sample this large comes from a missing or wrong scale.
+    implausible: float = 1000.0
 
 
 @dataclass(frozen=True)

@@ -12,11 +12,17 @@ the bands, with the levels `normal` and `fault` (README, What is published):
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | nyquist  | channel | share of the power in the top 10 % below Nyquist         | `nyquist`           |
+| implausible | channel | samples at or beyond `implausible` g in the last `window` | 1            |
 | queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
 Counts come from the source's cumulative counters (`counters()`, where the
 source has them), differenced over a sliding window of stream time.
+
+`implausible` judges the samples after `scale`, in g whatever the unit: a
+sample that large comes from a missing or wrong scale (counts read as g),
+never from a vibration accelerometer, so while it stands the monitor
+reports the channel's band values as unknown instead of raising levels.
 """
 
 import collections
@@ -26,6 +32,7 @@ from typing import Deque, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 
+from ..analyse.units import TO_SI
 from ..config import HealthConfig
 from .levels import LevelMachine
 from ..analyse.spectrum import Spectrum
@@ -54,7 +61,10 @@ Change = Tuple[Check, Tuple[str, str]]
 class Health:
     """Every health check of one monitor, fed by the pipeline."""
 
-    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float) -> None:
+    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float,
+                 scale: Optional[Sequence[float]] = None, unit: str = "g") -> None:
+        """`scale` and `unit` are the source's: what a raw sample is, for
+        the `implausible` check (default: raw samples already in g)."""
         self.config = config
         self.channels = list(channels)
         self.fs = sample_rate
@@ -72,6 +82,11 @@ class Health:
         # Nyquist strip: a little hysteresis and delay, since the share of a noisy
         # spectrum wavers around any limit.
         self.nyquist = [check("nyquist", c, "share", config.nyquist, 0.2, 2.0) for c in self.channels]
+        self.implausible = [check("implausible", c, "count", 1.0) for c in self.channels]
+        # The bound in raw values per channel (the check is fed raw blocks).
+        per_raw = np.abs(np.asarray(scale if scale is not None else [1.0] * len(self.channels), dtype=float))
+        self._implausible_raw = config.implausible * TO_SI["g"] / TO_SI[unit] / per_raw
+        self._implausible_low = float(self._implausible_raw.min())
         self.queue = check("queue", None, "count", 1.0)
         self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
@@ -80,6 +95,7 @@ class Health:
             + self.flatline
             + [self.rate]
             + self.nyquist
+            + self.implausible
             + [self.queue, self.config_check]
         )
         self._dropped_base = 0
@@ -93,6 +109,7 @@ class Health:
         # Totals for what sources do not count themselves.
         self._own: Dict[str, int] = {"samples": 0, "breaks": 0}
         self._own.update({f"clipped{i}": 0 for i in range(len(self.channels))})
+        self._own.update({f"implausible{i}": 0 for i in range(len(self.channels))})
 
     @staticmethod
     def _update(check: Check, value: Optional[float], t: float, out: List[Change]) -> None:
@@ -124,8 +141,10 @@ class Health:
         out: List[Change] = []
         self._update(self.stale, 0.0, t, out)
         totals: Dict[str, float] = dict(counters or {})
-        self._count_block(raw, lost, full_scale, totals)
-        self._windowed(t, totals, lost > 0, out)
+        implausible = self._count_block(raw, lost, full_scale, totals)
+        # A break or an implausible sample is judged at once: the band
+        # values of this block's results depend on it.
+        self._windowed(t, totals, lost > 0 or implausible, out)
         self._flatline(raw, lost, t, out)
         self._rate(start_index, lost, timestamp_us, t, out)
         return out
@@ -161,24 +180,35 @@ class Health:
     # ------------------------------------------------------------ details
 
     def _count_block(self, raw: np.ndarray, lost: int, full_scale: Optional[float],
-                     totals: Dict[str, float]) -> None:
+                     totals: Dict[str, float]) -> bool:
+        """Add this block to the running totals; True when it holds an implausible sample."""
         own = self._own
         own["samples"] += raw.shape[0]
         # Every break in the samples, whatever caused it: a sequence jump, a
         # dropped block when the pipeline fell behind, a reconnect.
         own["breaks"] += 1 if lost > 0 else 0
-        # Cheap test first: most blocks have no sample near full scale.
-        if full_scale is not None and raw.size and (raw.max() >= full_scale or raw.min() <= -full_scale):
-            clipped = np.count_nonzero(np.abs(raw) >= full_scale, axis=0)
-            for i, n in enumerate(clipped):
-                own[f"clipped{i}"] += int(n)
+        implausible = False
+        if raw.size:
+            # Cheap tests first: most blocks have no sample near full scale
+            # and none near the implausible bound.
+            top, bottom = raw.max(), raw.min()
+            if full_scale is not None and (top >= full_scale or bottom <= -full_scale):
+                clipped = np.count_nonzero(np.abs(raw) >= full_scale, axis=0)
+                for i, n in enumerate(clipped):
+                    own[f"clipped{i}"] += int(n)
+            if top >= self._implausible_low or bottom <= -self._implausible_low:
+                beyond = np.count_nonzero(np.abs(raw) >= self._implausible_raw, axis=0)
+                for i, n in enumerate(beyond):
+                    own[f"implausible{i}"] += int(n)
+                implausible = bool(beyond.any())
         totals.update(own)
+        return implausible
 
-    def _windowed(self, t: float, totals: Dict[str, float], gap: bool, out: List[Change]) -> None:
+    def _windowed(self, t: float, totals: Dict[str, float], urgent: bool, out: List[Change]) -> None:
         snaps = self._snapshots
         if t - snaps[-1][0] >= _SNAPSHOT_S:
             snaps.append((t, totals))
-        elif not gap:
+        elif not urgent:
             return  # judged with the next snapshot, at most _SNAPSHOT_S later
         while len(snaps) > 1 and snaps[1][0] <= t - self.config.window:
             snaps.popleft()
@@ -194,6 +224,8 @@ class Health:
         samples = delta("samples")
         for i, check in enumerate(self.clipping):
             self._update(check, delta(f"clipped{i}") / samples if samples > 0 else 0.0, t, out)
+        for i, check in enumerate(self.implausible):
+            self._update(check, delta(f"implausible{i}"), t, out)
 
     def _flatline(self, raw: np.ndarray, lost: int, t: float, out: List[Change]) -> None:
         n = raw.shape[0]
@@ -235,6 +267,10 @@ class Health:
             return
         measured = (index - i0) / elapsed
         self._update(self.rate, abs(measured / self.fs - 1.0), t, out)
+
+    def implausible_channels(self) -> List[int]:
+        """Indices of the channels whose `implausible` check is in fault."""
+        return [i for i, check in enumerate(self.implausible) if check.rule.level == "fault"]
 
     def rows(self) -> List[Dict[str, object]]:
         """name, channel, level and value of every check, for `levels`."""

@@ -33,6 +33,7 @@ from ..deliver.event_ids import EventIds
 from ..analyse.spectrum import SpectralStage, Spectrum
 from ..analyse.speed import SpeedTracker
 from ..analyse.stats import time_stats
+from ..acquire.scaling import warn_unscaled_counts
 from .reload import merge
 from .reporting import Reporter
 from .results import BandState, CheckState, Observer, Result
@@ -96,6 +97,7 @@ class Monitor:
         self._next_summary = 0.0
         self._last_sample_at = self.clock()
         self._stream_s = 0.0
+        self._counts_noted = False  # whether integer samples were seen (and a missing scale warned of)
 
     def _build_stages(self) -> None:
         """Ring and spectral stages: sized from [spectrum], allocated once."""
@@ -133,7 +135,7 @@ class Monitor:
         # could never change anything), so most values skip that call.
         self._learners = [base if b.baseline is not None else None
                           for (b, _), base in zip(self.bank.pairs, self.baselines)]
-        self.health = Health(cfg.health, cfg.source.channels, self.fs)
+        self.health = Health(cfg.health, cfg.source.channels, self.fs, cfg.source.scale, cfg.source.unit)
         if previous:
             keyed = [((b.name, self.config.source.channels[ch]), rule)
                      for (b, ch), rule in zip(self.bank.pairs, self.band_rules)]
@@ -306,6 +308,10 @@ class Monitor:
             if self.envelope is not None:
                 self.envelope.reset()
             self._pending = self.config.spectrum.size
+        if block.full_scale is not None and not self._counts_noted:
+            self._counts_noted = True
+            if not self.config.source.scale_given:
+                warn_unscaled_counts(self.config.source, block.full_scale)
         n = block.samples.shape[0]
         counters = self.source.counters()
         self._stream_s = (self._samples + n - 1) / self.fs
@@ -357,11 +363,17 @@ class Monitor:
         # it belongs to their middle, half a span before stream_s.
         centre_s = stream_s - (self.config.spectrum.span - 1) / (2 * self.fs)
         speed_hz = self.speed.update(spectrum, centre_s)
+        bands = self.bank.evaluate({"raw": spectrum, "envelope": envelope}, speed_hz)
+        implausible = self.health.implausible_channels()
+        if implausible:
+            # Values no accelerometer makes raise a health fault, not band levels.
+            bands = [v._replace(value=math.nan) if ch in implausible else v
+                     for v, (_, ch) in zip(bands, self.bank.pairs)]
         return Result(
             stream_s=stream_s,
             speed_hz=speed_hz,
             spectrum=spectrum,
-            bands=self.bank.evaluate({"raw": spectrum, "envelope": envelope}, speed_hz),
+            bands=bands,
             bank=self.bank,
             envelope=envelope,
             speed_s=self.speed.measured_s,

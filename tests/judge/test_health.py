@@ -6,18 +6,25 @@ by hand from them on invented signals. Facts of the trade are marked common
 practice where they are used.
 """
 
+import dataclasses
+import logging
+
 import numpy as np
 import pytest
 
-from monitor.config import HealthConfig
-from monitor.judge.health import Health
+from monitor.acquire.decoders.frame import encode_frame
+from monitor.acquire.sources.memory import ArraySource, BytesSource
 from monitor.analyse.spectrum import SpectralStage
+from monitor.config import HealthConfig, parse
+from monitor.judge.health import Health
+from monitor.service.monitor import Monitor
+from rig import ListSink
 
 FS = 1000.0
 
 
-def health(**kw):
-    return Health(HealthConfig(**kw), ["x", "y"], FS)
+def health(scale=None, unit="g", **kw):
+    return Health(HealthConfig(**kw), ["x", "y"], FS, scale, unit)
 
 
 def names(changes):
@@ -54,8 +61,8 @@ def test_corrupt_share_over_the_window():
 
 def test_clipping_at_the_integer_full_scale():
     # int16 full scale is 32767 (and -32768): samples there are clipped
-    # (common practice).
-    h = health(clipping=0.01)
+    # (common practice). The counts are of a +-2 g sensor: 2 / 32768 g each.
+    h = health(clipping=0.01, scale=[2 / 32768] * 2)
     raw = np.zeros((100, 2))
     raw[:, 0] = np.linspace(-1000, 1000, 100)
     raw[:5, 1] = -32768
@@ -65,7 +72,7 @@ def test_clipping_at_the_integer_full_scale():
 
 
 def test_float_samples_never_count_as_clipped():
-    h = health(clipping=0.001)
+    h = health(clipping=0.001, implausible=1e6)
     raw = np.full((100, 2), 40000.0)
     raw[:, 0] += np.arange(100)
     raw[:, 1] -= np.arange(100)
@@ -136,7 +143,8 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("nyquist", "x"), ("nyquist", "y"), ("queue", None), ("config", None),
+        ("nyquist", "x"), ("nyquist", "y"), ("implausible", "x"), ("implausible", "y"),
+        ("queue", None), ("config", None),
     }
 
 
@@ -189,3 +197,110 @@ clipping = 0.01
     events = [(e["name"], e["channel"], e["level"]) for e in sink.of("event")]
     assert events == [("clipping", "y", "fault")]
     assert sink.of("event")[0]["value"] == pytest.approx(0.04, rel=0.05)
+
+
+# ------------------------------------------------------------- implausible
+
+# A live stream of counts; `scale` left out or given.
+COUNTS = """
+[node]
+name = "counts"
+[source]
+kind = "tcp-server"
+port = 5600
+sample_rate = 1000.0
+channels = [{channels}]
+{scale}[spectrum]
+size = 256
+"""
+
+
+def test_implausible_counts_samples_at_or_beyond_the_bound_in_g():
+    # Counts read as g (scale 1.0 left in place): 1000 g and more is the
+    # bound, this project's choice (README, [health]). 10 of 100 samples of x
+    # at 1500, none of y.
+    h = health(window=1.0)
+    raw = np.zeros((100, 2))
+    raw[:, 0] = np.linspace(-900, 900, 100)
+    raw[::10, 0] = 1500.0
+    raw[:, 1] = np.linspace(-999, 999, 100)
+    assert names(h.on_block(raw, 0, 0, 0.099, None, None, None)) == [("implausible", "x", "fault")]
+    assert (h.implausible[0].value, h.implausible[1].value) == (10, 0)
+    assert h.implausible_channels() == [0]
+    # Cleared once the samples left the 1 s window.
+    out = []
+    for k in range(1, 13):
+        out += names(h.on_block(np.zeros((100, 2)) + k * 1e-3, k * 100, 0, (k + 1) * 0.1 - 1e-3, None, None, None))
+    assert out == [("implausible", "x", "normal")]
+    assert h.implausible_channels() == []
+
+
+@pytest.mark.parametrize("unit, scale, bound_raw", [
+    # 1000 g in m/s2 is 9806.65 (standard gravity 9.80665 m/s2, CGPM 1901);
+    # with 0.001 m/s2 per count that is 9,806,650 counts.
+    ("m/s2", 0.001, 9806.65 / 0.001),
+    # A negative scale (an axis mounted the other way) bounds the magnitude.
+    ("g", -0.5, 1000 / 0.5),
+])
+def test_implausible_bound_follows_unit_and_scale(unit, scale, bound_raw):
+    h = health(scale=[scale, scale], unit=unit)
+    below = np.full((10, 2), bound_raw * 0.999)
+    assert names(h.on_block(below, 0, 0, 0.0099, None, None, None)) == []
+    at = np.full((10, 2), -bound_raw * 1.0001)
+    assert names(h.on_block(at, 10, 0, 0.0199, None, None, None)) == [
+        ("implausible", "x", "fault"), ("implausible", "y", "fault")]
+
+
+def test_implausible_samples_silence_the_band_levels_through_the_pipeline():
+    # An int16 stream whose scale was left out: a tone of 20000 counts reads
+    # as 20000 g. The health check faults at the first block and the bands
+    # report no value (null) and raise no level; the same counts with the
+    # sensor's scale (+-2 g over int16: 2 / 32768 g per count) raise the band.
+    text = COUNTS.format(channels='"x", "y"', scale="") + """
+[[band]]
+name = "tone"
+hz = [40.0, 60.0]
+quantity = "acceleration"
+warning = 0.5
+delay = 0.5
+"""
+    counts = np.round(20000 * np.sin(2 * np.pi * 50 * np.arange(5000) / FS))
+    samples = np.column_stack([counts, counts])
+
+    def run(config):
+        sink = ListSink()
+        source = ArraySource(config.source, samples)
+        source.open()
+        Monitor(config, source, sink).run()
+        return sink
+
+    bare = parse(text)
+    sink = run(bare)
+    events = [(e["name"], e["channel"], e["level"]) for e in sink.of("event")]
+    assert events == [("implausible", "x", "fault"), ("implausible", "y", "fault")]
+    assert all(b["value"] is None for s in sink.of("summary") for b in s["bands"])
+    scaled = dataclasses.replace(bare, source=dataclasses.replace(bare.source, scale=(2 / 32768,) * 2,
+                                                                   scale_given=True))
+    sink = run(scaled)
+    assert {(e["name"], e["level"]) for e in sink.of("event")} == {("tone", "warning")}
+
+
+@pytest.mark.parametrize("scale, warned", [("", True), ("scale = 6.1035e-05\n", False)])
+def test_integer_frames_without_scale_are_warned_of_once(caplog, scale, warned):
+    # int16 frames of the wire format (README, The sensor wire format) through
+    # the stream path every link uses; without `scale` one warning gives the
+    # formula (README, [source]).
+    config = parse(COUNTS.format(channels='"x"', scale=scale))
+    counts = np.round(300 * np.sin(2 * np.pi * 50 * np.arange(4096) / FS)).astype(np.int16)[:, None]
+    chunks = [encode_frame(counts[i:i + 256], i // 256, sample_type=1) for i in range(0, 4096, 256)]
+    source = BytesSource(config.source, chunks)
+    source.open()
+    with caplog.at_level(logging.WARNING):
+        Monitor(config, source, ListSink()).run()
+    source.close()
+    notes = [r.getMessage() for r in caplog.records if "counts" in r.getMessage()]
+    if warned:
+        assert len(notes) == 1, notes
+        assert "int16" in notes[0] and "2^(bits-1)" in notes[0] and "6.10352e-05" in notes[0]
+    else:
+        assert notes == []
