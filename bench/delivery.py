@@ -60,7 +60,8 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 import paho.mqtt.client as mqtt  # noqa: E402
 
 from monitor.commands.bench import (  # noqa: E402
-    bench_config, bench_monitor, run_monitor, run_pipeline, synthetic_samples, wire_chunks,
+    bench_config, bench_monitor, run_monitor, run_pipeline, scaled_for_wire, synthetic_samples, wire_chunks,
+    wire_unit,
 )
 from monitor.config import Config, parse  # noqa: E402
 from monitor.deliver.base import Payload, Sink  # noqa: E402
@@ -419,13 +420,13 @@ def main() -> int:
         config = make_config(closed, outage_dir, args.queue_limit, {})
         samples = synthetic_samples(config, seconds)
         chunks = wire_chunks(samples)
-        # The frames carry counts; scale them back to g as a sensor's config would.
-        scale = (4.0 * float(np.max(np.abs(samples))) / 32767.0,) * len(CHANNELS)
+        unit = wire_unit(samples)
         del samples
         wire_mb = sum(map(len, chunks)) / 1e6
 
         def with_scale(cfg: Config) -> Config:
-            return dataclasses.replace(cfg, source=dataclasses.replace(cfg.source, scale=scale))
+            # The frames carry counts; scale them back to g as a sensor's config would.
+            return scaled_for_wire(cfg, unit)
 
         config = with_scale(config)
         calib_chunks = chunks[: max(1, int(len(chunks) * min(1.0, CALIBRATION_S / seconds)))]

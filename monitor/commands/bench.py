@@ -11,7 +11,9 @@ the configured pipeline, measured side by side in one run with
 
 The samples come from the simulator at the config's rate and channels
 (whatever the configured source), are encoded as int16 frames of the wire
-format before timing starts, and are decoded inside the timed run by the
+format before timing starts (with the config's scale set to what one count
+is, so band values, levels and their log lines are the simulated
+machine's), and are decoded inside the timed run by the
 stream path every link kind uses (a reader thread, the frame decoder, the
 bounded block queue; `BytesSource` holds the bytes in place of a link): the
 pipeline measured is decode, ring, spectra, bands, peaks, speed, rules and
@@ -80,11 +82,16 @@ def synthetic_samples(config: Config, seconds: float) -> np.ndarray:
     return np.vstack(parts)
 
 
+def wire_unit(samples: np.ndarray) -> float:
+    """What one count of `wire_chunks` is in the unit: full scale at 4x the
+    largest value, so no sample clips."""
+    return 4.0 * max(float(np.max(np.abs(samples))), 1e-12) / 32767.0
+
+
 def wire_chunks(samples: np.ndarray) -> List[bytes]:
-    """The samples as int16 frames (full scale at 4x the largest value),
-    cut into reads of CHUNK_BYTES."""
-    scale = 32767.0 / (4.0 * max(float(np.max(np.abs(samples))), 1e-12))
-    counts = np.round(samples * scale).astype(np.int16)
+    """The samples as int16 frames (one count is `wire_unit`), cut into
+    reads of CHUNK_BYTES."""
+    counts = np.round(samples / wire_unit(samples)).astype(np.int16)
     stream = b"".join(
         encode_frame(counts[i : i + FRAME_SAMPLES], seq, sample_type=1)
         for seq, i in enumerate(range(0, len(counts), FRAME_SAMPLES))
@@ -96,6 +103,15 @@ def bench_config(config: Config) -> Config:
     """The config with its source turned into the frame stream `wire_chunks` makes."""
     src = dataclasses.replace(config.source, sample_rate=_rate(config), realtime=False, format="frame")
     return dataclasses.replace(config, source=src)
+
+
+def scaled_for_wire(config: Config, unit: float) -> Config:
+    """The config with `[source] scale` = `unit` (`wire_unit`), turning the
+    counts of `wire_chunks` back into the unit as a sensor's config would:
+    band values, levels and log lines are then the simulated machine's,
+    whatever scale the config has for its own source."""
+    scale = (unit,) * len(config.source.channels)
+    return dataclasses.replace(config, source=dataclasses.replace(config.source, scale=scale, scale_given=True))
 
 
 def bench_monitor(config: Config, chunks: List[bytes], sink: Sink, **monitor_args: Any) -> Monitor:
@@ -169,6 +185,7 @@ def bench(config: Config, out: TextIO, seconds: float = 120.0, repeats: int = 3)
     rate = _rate(config)
     samples = synthetic_samples(config, seconds)
     chunks = wire_chunks(samples)
+    config = scaled_for_wire(config, wire_unit(samples))
     pipeline = min(run_pipeline(config, chunks) for _ in range(repeats))
     bare = min(run_bare_fft(config, samples) for _ in range(repeats))
     welch_times = [run_welch(config, samples) for _ in range(repeats)]
