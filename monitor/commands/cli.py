@@ -235,6 +235,38 @@ def _recording_line(config: Config) -> str:
     return f"  recording {src.path}: {kind}; one stored value is {scales} {src.unit}\n"
 
 
+def _limit(absolute: Optional[float], ratio: Optional[float]) -> str:
+    """A limit as `check` prints it: the number, `x2.0 of learned`, or `-`."""
+    if ratio is not None:
+        text = f"{ratio:g}"
+        return f"x{text}{'' if '.' in text or 'e' in text else '.0'} of learned"
+    return "-" if absolute is None else f"{absolute:g}"
+
+
+def _learned_lines(config: Config) -> List[str]:
+    """The baselines a node has learned (in `queue_dir`) and the limits they
+    give, or how each band will learn; read only, nothing is created."""
+    from ..judge.baseline import BaselineStore, key
+
+    learning = [b for b in config.bands if b.baseline is not None]
+    if not learning:
+        return []
+    store = BaselineStore(config.mqtt.queue_dir if config.mqtt else None, read_only=True)
+    lines = []
+    for b in learning:
+        unit = quantity_unit(b.quantity, config.source.unit)
+        for ch in b.channels:
+            value = store.get(key(b.name, ch), b.baseline or 0.0)
+            if value is None:
+                lines.append(f"  {b.name}/{ch}: learns its baseline over the first {b.baseline:g} s\n")
+                continue
+            limits = [f"{level} {ratio * value:.4g}" for level, ratio in (("warning", b.warning_ratio),
+                                                                          ("alarm", b.alarm_ratio))
+                      if ratio is not None]
+            lines.append(f"  {b.name}/{ch}: learned {value:.4g} {unit}, so {', '.join(limits)} {unit}\n")
+    return lines
+
+
 def print_check(config: Config, out: TextIO) -> None:
     """The resolved config, as `bandwatch check` prints it."""
     from ..acquire.sources import available
@@ -296,12 +328,14 @@ def print_check(config: Config, out: TextIO) -> None:
                 edges += " envelope"
             rows.append((
                 b.name, ",".join(b.channels), edges, b.quantity, quantity_unit(b.quantity, src.unit),
-                "-" if b.warning is None else f"{b.warning:g}", "-" if b.alarm is None else f"{b.alarm:g}",
+                _limit(b.warning, b.warning_ratio), _limit(b.alarm, b.alarm_ratio),
                 f"{b.hysteresis:g}", f"{b.delay:g} s",
             ))
         widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
         for r in rows:
             w("  " + "  ".join(cell.ljust(widths[i]) for i, cell in enumerate(r)).rstrip() + "\n")
+        for line in _learned_lines(config):
+            w(line)
     w(f"health: stale after {config.health.stale:g} s without samples\n")
     if config.mqtt is None:
         w("output: JSON lines on stdout (no [mqtt] section)\n")

@@ -633,3 +633,47 @@ def test_an_integer_recording_without_scale_exits_2(tmp_path, command):
     # The README's formula, and its example: +-2 g over int16 is 2 / 2^15 g per count.
     assert "source.scale" in result.stderr and "2^(bits-1)" in result.stderr
     assert f"{2 / 2 ** 15:.6g}" in result.stderr
+
+
+# ---------------------------------------------------------------------------
+# check: limits from a learned baseline
+
+
+RATIO_BANDS = """
+[[band]]
+name = "2x-learned"
+channel = "x"
+orders = [1.8, 2.2]
+quantity = "velocity"
+baseline = 600
+warning_ratio = 2.0
+alarm_ratio = 4.5
+"""
+
+
+def test_check_shows_ratio_limits_and_the_learned_values(tmp_path):
+    state = tmp_path / "state"
+    path = demo_copy(tmp_path)
+    path.write_text(path.read_text() + RATIO_BANDS, encoding="utf-8")
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 0, result.stderr
+    row = next(line for line in result.stdout.splitlines() if line.split()[:1] == ["2x-learned"])
+    assert "x2.0 of learned" in row and "x4.5 of learned" in row
+    assert "2x-learned/x: learns its baseline over the first 600 s" in result.stdout
+    # A node that has learned 1.5 mm/s: limits at 2 and 4.5 times it (README,
+    # Limits relative to a learned baseline): 3 and 6.75 mm/s.
+    state.mkdir()
+    (state / "baselines.json").write_text(json.dumps(
+        {"2x-learned/x": {"value": 1.5, "seconds": 600.0, "learned_at_stream_s": 601.0}}), encoding="utf-8")
+    path.write_text(path.read_text() + f'\n[mqtt]\nqueue_dir = "{state}"\n', encoding="utf-8")
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 0, result.stderr
+    assert "2x-learned/x: learned 1.5 mm/s, so warning 3, alarm 6.75 mm/s" in result.stdout
+
+
+def test_check_creates_no_state_folder(tmp_path):
+    path = demo_copy(tmp_path)
+    path.write_text(path.read_text() + RATIO_BANDS + '\n[mqtt]\nqueue_dir = "never"\n', encoding="utf-8")
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 0, result.stderr
+    assert not (tmp_path / "never").exists()
