@@ -212,13 +212,22 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
     if unknown:
         return usage("reset-baseline", f"no band with a baseline named {', '.join(unknown)}; "
                      f"bands with one: {', '.join(b.name for b in learning) or 'none'}", sys.stderr)
+    if not learning:
+        print(f"bandwatch: reset-baseline: no band in {config.path} has a baseline; nothing to forget",
+              file=sys.stderr)
+        return EXIT_OK
     if config.mqtt is None:
         print("bandwatch: reset-baseline: without [mqtt] baselines are not stored (each run learns afresh)",
               file=sys.stderr)
         return EXIT_OK
     store = BaselineStore(config.mqtt.queue_dir)
     chosen = [b for b in learning if not names or b.name in names]
-    removed = store.remove([key(b.name, ch) for b in chosen for ch in b.channels])
+    keys = [key(b.name, ch) for b in chosen for ch in b.channels]
+    if not any(k in store.entries for k in keys):
+        # Nothing is written (no folder made) when nothing is learned yet.
+        print(f"bandwatch: reset-baseline: nothing learned to forget in {store.path}", file=sys.stderr)
+        return EXIT_OK
+    removed = store.remove(keys)
     print(f"forgot {removed} learned baseline(s) in {store.path}; "
           "`systemctl reload bandwatch` makes the service learn them afresh")
     return EXIT_OK

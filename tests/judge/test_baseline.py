@@ -102,3 +102,17 @@ def test_config_rules_for_baseline_keys():
         parse(BASE + BAND.replace("warning_ratio = 2.0", "warning_ratio = 2.0\nwarning = 1.0"))
     with pytest.raises(ConfigError, match="alarm_ratio: expected a ratio above warning_ratio"):
         parse(BASE + BAND.replace("alarm_ratio = 4.0", "alarm_ratio = 1.5"))
+
+
+@pytest.mark.parametrize("bands", ["", BAND], ids=["no-baseline", "nothing-learned"])
+def test_reset_baseline_creates_nothing_when_there_is_nothing_to_forget(tmp_path, bands):
+    # The queue folder would be made (as root, by whoever typed it) only to
+    # hold an empty file: nothing is written instead.
+    state = tmp_path / "state"
+    config = tmp_path / "bandwatch.toml"
+    config.write_text(BASE + bands + f'\n[mqtt]\nqueue_dir = "{state}"\n')
+    out = subprocess.run([sys.executable, "-m", "monitor", "reset-baseline", "-c", str(config)],
+                         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, timeout=30)
+    assert out.returncode == 0, out.stderr
+    assert "nothing" in out.stderr and "forget" in out.stderr
+    assert not state.exists()
