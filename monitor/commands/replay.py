@@ -40,6 +40,7 @@ import dataclasses
 import logging
 import math
 import os
+import shlex
 import sys
 import threading
 import time
@@ -66,7 +67,10 @@ from .replay_tally import History, Replayed, Tally, Worst, score as score_of, wr
 log = logging.getLogger("bandwatch.replay")
 
 PROGRESS_INTERVAL_S = 0.1
-PLOT_HINT = "pip install 'bandwatch[plot]'"
+# Into the very Python running bandwatch (a checkout's .venv, the service's
+# /opt/bandwatch/venv): `pip install 'bandwatch[plot]'` from a checkout could
+# fetch another package of that name into another Python.
+PLOT_HINT = f"{shlex.quote(sys.executable)} -m pip install 'matplotlib>=3.5'"
 
 
 # ------------------------------------------------------------------ source
