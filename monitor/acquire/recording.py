@@ -1,12 +1,16 @@
 """Recordings: WAV files written and read a block at a time.
 
-bandwatch writes RIFF/WAVE files any audio or analysis tool opens::
+bandwatch writes RIFF/WAVE files, float32 unless told otherwise::
 
     RIFF <size> WAVE
       fmt   format tag 3 (IEEE float), 32 bits, C channels, integer rate
       fact  sample frames per channel (required for non-PCM formats)
       bwmd  UTF-8 JSON: channel names, unit, start time (UTC), version
       data  float32 samples, interleaved by instant, already in the unit
+
+or, as `int16` or `int32`, plain PCM (format tag 1, no fact chunk), which
+every WAV reader opens, Python's `wave` module included: the data are counts
+and the metadata's `scale` lists what one count is in the unit, per channel.
 
 Plain readers skip the `bwmd` chunk. The writer streams: blocks are appended
 and the RIFF, fact and data sizes are rewritten every `sync_seconds` of
@@ -42,6 +46,8 @@ _GUID_TAIL = b"\x00\x00\x00\x00\x10\x00\x80\x00\x00\xaa\x00\x38\x9b\x71"
 _CHUNK = struct.Struct("<4sI")
 _MAX_RIFF = 0xFFFFFFFF
 _MAX_META = 1 << 20
+# What the writer can store: numpy type, bits, format tag.
+WRITE_TYPES = {"float32": ("<f4", 32, _FLOAT), "int16": ("<i2", 16, _PCM), "int32": ("<i4", 32, _PCM)}
 _TAG_NAMES = {0x0002: "ADPCM", 0x0006: "A-law", 0x0007: "mu-law", 0x0055: "MPEG Layer 3", 0x0011: "IMA ADPCM"}
 READABLE = "PCM 8/16/24/32-bit, IEEE float 32/64-bit, plain or WAVE_FORMAT_EXTENSIBLE"
 
@@ -66,7 +72,14 @@ def _parse_utc(text: Any) -> Optional[_dt.datetime]:
 
 
 class RecordingWriter:
-    """Streams blocks of samples, shaped (n, C) and already in `unit`, to a WAV file."""
+    """Streams blocks of samples, shaped (n, C) and already in `unit`, to a WAV file.
+
+    `sample_type` is one of WRITE_TYPES. An integer type stores each value
+    as round(value / scale) counts, clipped to the type (counted in
+    `clipped`); `scale` (unit per count, per channel) is given here or, once
+    the first samples show what suits, with `set_scale` before they are
+    written (the caller then stores it in the metadata).
+    """
 
     def __init__(
         self,
@@ -77,6 +90,8 @@ class RecordingWriter:
         start_time: Optional[_dt.datetime] = None,
         extra: Optional[Dict[str, Any]] = None,
         sync_seconds: float = 1.0,
+        sample_type: str = "float32",
+        scale: Optional[Sequence[float]] = None,
     ) -> None:
         if not (sample_rate > 0 and float(sample_rate).is_integer() and sample_rate < 2**32):
             raise ValueError(f"{sample_rate=} is not a whole number of Hz; a WAV file stores an integer rate")
@@ -86,11 +101,17 @@ class RecordingWriter:
             raise ValueError(f"{sample_rate=} with {len(channels)} channels exceeds the WAV byte rate field")
         if not sync_seconds > 0:
             raise ValueError(f"{sync_seconds=} must be positive")
+        if sample_type not in WRITE_TYPES:
+            raise ValueError(f"{sample_type=} is not one of {', '.join(WRITE_TYPES)}")
         self.path = str(path)
         self.sample_rate = int(sample_rate)
         self.channels = len(channels)
         self.frames = 0
-        self._align = 4 * self.channels
+        self.sample_type = sample_type
+        self._dtype, self._bits, self._tag = WRITE_TYPES[sample_type]
+        self._align = self._bits // 8 * self.channels
+        self.scale: Optional[np.ndarray] = None
+        self.clipped = 0  # integer values beyond the type, stored at its limit
         self._sync_frames = max(1, int(math.ceil(sync_seconds * self.sample_rate)))
         self._synced = 0
         meta: Dict[str, Any] = dict(extra or {})
@@ -101,6 +122,8 @@ class RecordingWriter:
             bandwatch_version=__version__,
         )
         self.metadata = meta
+        if scale is not None:
+            self.set_scale(scale)
         header = self._header(json.dumps(meta, ensure_ascii=False).encode("utf-8"))
         try:
             self._file = open(self.path, "wb")
@@ -110,13 +133,29 @@ class RecordingWriter:
         self._data_at = len(header)
         self._update_sizes()
 
+    def set_scale(self, scale: Sequence[float]) -> None:
+        """Unit per count of an integer recording, per channel (before the first write)."""
+        values = np.asarray(scale, dtype=float)
+        if self._tag != _PCM or self.frames:
+            raise ValueError(f"a scale is set once, before any samples, for an integer type (not {self.sample_type})")
+        if values.shape != (self.channels,) or not np.all(np.isfinite(values) & (values != 0)):
+            raise ValueError(f"scale={list(scale)!r}: expected {self.channels} finite non-zero numbers")
+        self.scale = values
+        self.metadata["scale"] = [float(v) for v in values]
+
     def _header(self, meta: bytes) -> bytes:
         c = self.channels
-        fmt = struct.pack("<HHIIHHH", _FLOAT, c, self.sample_rate, self.sample_rate * self._align,
-                          self._align, 32, 0)
+        if self._tag == _FLOAT:
+            fmt = struct.pack("<HHIIHHH", _FLOAT, c, self.sample_rate, self.sample_rate * self._align,
+                              self._align, self._bits, 0)
+        else:  # plain PCM: a 16-byte fmt chunk, as the oldest readers expect
+            fmt = struct.pack("<HHIIHH", _PCM, c, self.sample_rate, self.sample_rate * self._align,
+                              self._align, self._bits)
         parts = [b"RIFF", b"\0\0\0\0", b"WAVE", _CHUNK.pack(b"fmt ", len(fmt)), fmt]
-        self._fact_at = sum(map(len, parts)) + 8
-        parts += [_CHUNK.pack(b"fact", 4), b"\0\0\0\0"]
+        self._fact_at: Optional[int] = None
+        if self._tag == _FLOAT:  # required for non-PCM formats only
+            self._fact_at = sum(map(len, parts)) + 8
+            parts += [_CHUNK.pack(b"fact", 4), b"\0\0\0\0"]
         # Where the metadata's body lies, for a caller that rewrites it in
         # place with the same length (`bandwatch record`'s gap notes).
         self.metadata_span = (sum(map(len, parts)) + 8, len(meta))
@@ -137,13 +176,26 @@ class RecordingWriter:
         if self._data_at + (self.frames + n) * self._align - 8 > _MAX_RIFF:
             raise RecordingError(f"{self.path}: a WAV file holds at most 4 GiB; this block would exceed it "
                                  f"after {self.frames / self.sample_rate:.0f} s")
+        if self._tag == _PCM:
+            data = self._counts(data)
         try:
-            self._file.write(np.ascontiguousarray(data, dtype="<f4").tobytes())
+            self._file.write(np.ascontiguousarray(data, dtype=self._dtype).tobytes())
         except OSError as exc:
             raise RecordingError(f"{self.path}: cannot write the recording: {exc.strerror or exc}") from None
         self.frames += n
         if self.frames - self._synced >= self._sync_frames:
             self.flush()
+
+    def _counts(self, data: np.ndarray) -> np.ndarray:
+        if self.scale is None:
+            raise ValueError(f"{self.path}: an {self.sample_type} recording needs its scale before samples")
+        top = 2.0 ** (self._bits - 1)
+        counts = np.rint(data / self.scale)
+        beyond = (counts > top - 1) | (counts < -top)
+        if beyond.any():
+            self.clipped += int(np.count_nonzero(beyond))
+            counts = np.clip(counts, -top, top - 1)
+        return counts
 
     def flush(self) -> None:
         """Rewrite the sizes in the header and hand everything to the OS."""
@@ -155,6 +207,8 @@ class RecordingWriter:
         f = self._file
         for at, value in ((4, self._data_at + data - 8), (self._fact_at, self.frames),
                           (self._data_size_at, data)):
+            if at is None:
+                continue
             f.seek(at)
             f.write(struct.pack("<I", value))
         f.seek(0, os.SEEK_END)

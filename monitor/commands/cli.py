@@ -98,6 +98,12 @@ def _parser() -> argparse.ArgumentParser:
                         help="the new WAV file to write (an existing file is never overwritten)")
     record.add_argument("--seconds", required=True, type=float, metavar="S",
                         help="seconds of samples to record (counted from samples, not the clock)")
+    record.add_argument("--format", default="float32", choices=["float32", "int16", "int32"],
+                        help="float32 (default): values in the unit, IEEE float WAV; int16 or int32: counts "
+                        "as plain PCM, which every WAV reader opens, with one count's value in the metadata")
+    record.add_argument("--full-scale", type=float, metavar="X", help="with int16 or int32: the largest "
+                        "magnitude stored, in the unit (one count = X / 2^(bits-1)); default: the sensor's "
+                        "own counts, or 1000 g for float samples")
     with_config("view", "live terminal view of band levels against limits")
     reset = with_config("reset-baseline", "forget learned baselines, so the service learns them afresh "
                         "(then: systemctl reload bandwatch)")
@@ -154,7 +160,8 @@ def _main(argv: Optional[List[str]]) -> int:
     if args.command == "record":
         from .record import record_command
 
-        return record_command(config, args.output, args.seconds)
+        return record_command(config, args.output, args.seconds, sample_type=args.format,
+                              full_scale=args.full_scale)
     if args.command == "replay":
         from .replay import replay_command
 

@@ -12,6 +12,10 @@ file of the first sample after the gap and `count` the samples missing
 there. `bandwatch replay` puts the gaps back, so its stream times match the
 live run's.
 
+`--format int16|int32` stores counts instead of float32 values, as plain
+PCM that every WAV reader opens; the metadata's `scale` says what a count
+is (`count_step`), and `replay` reads them back in the unit.
+
 The notes are written into room reserved in the metadata chunk when the
 file is created (the chunk's size is fixed once samples follow it), and the
 chunk is rewritten in place, with the same length, as gaps come and at the
@@ -30,6 +34,9 @@ from typing import Any, Dict, List, NamedTuple, Optional, TextIO
 
 import numpy as np
 
+from ..acquire.block import Block
+from ..acquire.recording import WRITE_TYPES
+from ..analyse.units import TO_SI
 from ..config import Config
 from ..deliver.payloads import utc_text
 from ..errors import BandwatchError
@@ -60,6 +67,8 @@ class Recorded(NamedTuple):
     lost: int  # samples the source lost, noted, not in the file
     gaps: int  # notes in the metadata
     complete: bool  # the requested seconds were reached
+    scale: Optional[List[float]] = None  # unit per count, for integer formats
+    clipped: int = 0  # values beyond an integer format's range
 
     @property
     def seconds(self) -> float:
@@ -115,17 +124,38 @@ def _note_room(seconds: float) -> int:
     return min(notes * _NOTE_BYTES, _META_LIMIT)
 
 
+def count_step(config: Config, block: Block, bits: int, full_scale: Optional[float] = None) -> np.ndarray:
+    """What one stored count of a `bits`-bit recording is in the unit, per
+    channel, chosen from the first block: full-scale range / 2^(bits-1)
+    with `full_scale` when given; else the source's own counts, kept
+    exactly, when it sends integers that fit; else its whole integer range;
+    else (floats) the `implausible` bound, which no real sample reaches."""
+    scale = np.asarray(config.source.scale, dtype=float)
+    top = 2.0 ** (bits - 1)
+    if full_scale is not None:
+        return np.full(len(scale), full_scale / top)
+    if block.full_scale is not None and block.full_scale < top:
+        return scale
+    if block.full_scale is not None:
+        return (block.full_scale + 1.0) * np.abs(scale) / top
+    bound = config.health.implausible * TO_SI["g"] / TO_SI[config.source.unit]
+    return np.full(len(scale), bound / top)
+
+
 def record(
     config: Config,
     output: str,
     seconds: float,
     source: Source,
     stop: Optional[threading.Event] = None,
+    sample_type: str = "float32",
+    full_scale: Optional[float] = None,
 ) -> Recorded:
     """Write `seconds` of samples from the opened `source` to a new WAV file at
-    `output`. Stops early when the source ends or `stop` is set. Raises
-    RecordingError when the file cannot be written and SourceError when the
-    source fails; the file is closed and valid either way."""
+    `output`, as `sample_type` (`full_scale`, in the unit, for the integer
+    types: see `count_step`). Stops early when the source ends or `stop` is
+    set. Raises RecordingError when the file cannot be written and
+    SourceError when the source fails; the file is closed and valid either way."""
     stop = stop or threading.Event()
     rate = source.sample_rate
     target = int(round(seconds * rate))
@@ -134,7 +164,9 @@ def record(
     writer = RecordingWriter(
         output, rate, config.source.channels, config.source.unit,
         extra={"node": config.node, "source": config.source.kind, "lost": [], _PAD_KEY: " " * room},
+        sample_type=sample_type,
     )
+    integer = WRITE_TYPES[sample_type][2] == 1
     notes = _Notes(output, room)
     written = lost = 0
     complete = False
@@ -159,6 +191,12 @@ def record(
                          else time.time() - block.samples.shape[0] / rate)
                 notes.set(start_time=utc_text(_dt.datetime.fromtimestamp(first, _dt.timezone.utc)))
                 dirty = True
+                if integer:
+                    step = count_step(config, block, WRITE_TYPES[sample_type][1], full_scale)
+                    writer.set_scale(step)
+                    notes.set(scale=writer.metadata["scale"])
+                    log.info("%s counts: one is %s %s", sample_type,
+                             ", ".join(f"{v:.6g}" for v in step), config.source.unit)
             samples = block.samples[: target - written]
             if block.lost:
                 if not notes.fits(written, block.lost):
@@ -180,7 +218,8 @@ def record(
         _finish(writer, notes, quiet=True)
         raise
     _finish(writer, notes)
-    return Recorded(output, written, writer.sample_rate, lost, len(notes.notes), complete)
+    scale = writer.metadata.get("scale") if integer else None
+    return Recorded(output, written, writer.sample_rate, lost, len(notes.notes), complete, scale, writer.clipped)
 
 
 def _finish(writer: RecordingWriter, notes: _Notes, quiet: bool = False) -> None:
@@ -195,11 +234,19 @@ def _finish(writer: RecordingWriter, notes: _Notes, quiet: bool = False) -> None
         log.error("%s", exc)
 
 
-def record_command(config: Config, output: str, seconds: float, err: Optional[TextIO] = None) -> int:
-    """`bandwatch record -c FILE -o REC --seconds S`; returns the exit code."""
+def record_command(config: Config, output: str, seconds: float, err: Optional[TextIO] = None,
+                   sample_type: str = "float32", full_scale: Optional[float] = None) -> int:
+    """`bandwatch record -c FILE -o REC --seconds S [--format F] [--full-scale X]`; returns the exit code."""
     err = err or sys.stderr
     if not (math.isfinite(seconds) and seconds > 0):
         return usage("record", f"{seconds=} is not a positive number of seconds", err)
+    if full_scale is not None:
+        if sample_type == "float32":
+            return usage("record", "--full-scale applies to --format int16 or int32; float32 stores the "
+                         "values themselves", err)
+        if not (math.isfinite(full_scale) and full_scale > 0):
+            return usage("record", f"--full-scale {full_scale:g} is not a positive number (in "
+                         f"{config.source.unit})", err)
     rate = config.source.sample_rate
     if rate > 0 and not float(rate).is_integer():
         return usage("record", f"{config.path}: [source] sample_rate = {rate:g} is not a whole number of Hz; "
@@ -213,10 +260,11 @@ def record_command(config: Config, output: str, seconds: float, err: Optional[Te
         return usage("record", f"cannot write {output}: the folder {folder} does not exist", err)
 
     with stop_on_signals(threading.Event(), "the recording") as stop:
-        return _record(config, output, seconds, stop, err)
+        return _record(config, output, seconds, stop, err, sample_type, full_scale)
 
 
-def _record(config: Config, output: str, seconds: float, stop: threading.Event, err: TextIO) -> int:
+def _record(config: Config, output: str, seconds: float, stop: threading.Event, err: TextIO,
+            sample_type: str, full_scale: Optional[float]) -> int:
     source = open_source_or_fail(config)
     if source is None:
         return EXIT_FAILURE
@@ -226,7 +274,7 @@ def _record(config: Config, output: str, seconds: float, stop: threading.Event, 
             return EXIT_FAILURE
         log.info("recording %g s from the %s source (%d channel(s) at %g Hz) to %s", seconds,
                  config.source.kind, len(config.source.channels), source.sample_rate, output)
-        done = record(config, output, seconds, source, stop)
+        done = record(config, output, seconds, source, stop, sample_type, full_scale)
     except (BandwatchError, OSError, ValueError) as exc:
         log.error("%s", exc)
         if os.path.exists(output):
@@ -238,6 +286,12 @@ def _record(config: Config, output: str, seconds: float, stop: threading.Event, 
         reason = "stopped" if stop.is_set() else "the source ended"
         log.info("%s after %.6g of %g s", reason, done.seconds, seconds)
     line = f"recorded {done.samples} samples per channel ({done.seconds:.6g} s at {done.sample_rate} Hz) to {output}"
+    if done.scale is not None:
+        steps = ", ".join(f"{v:.6g}" for v in done.scale)
+        line += f"; {sample_type} counts of {steps} {config.source.unit} each (the metadata's scale)"
+    if done.clipped:
+        line += (f"; {done.clipped} values beyond the {sample_type} range were stored at its limit "
+                 "(give a larger --full-scale)")
     if done.gaps:
         line += f"; {done.lost} samples lost in {done.gaps} gap(s), noted in the metadata"
     print(line, file=err)

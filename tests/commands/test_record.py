@@ -219,6 +219,34 @@ def free_port() -> int:
         return s.getsockname()[1]
 
 
+def record_from_sensor(config, out, frames, *options):
+    """`bandwatch record` of a tcp-server config, fed `frames` (wire bytes)
+    by a sensor that dials in; returns (exit code, stderr)."""
+    port = parse(config.read_text(), str(config)).source.port
+    proc = subprocess.Popen([sys.executable, "-m", "monitor", "record", "-c", str(config), "-o", str(out),
+                             "--seconds", "1", *options], cwd=str(ROOT), env=env(), stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 20.0
+        while True:
+            try:
+                sensor = socket.create_connection(("127.0.0.1", port), timeout=2.0)
+                break
+            except OSError:
+                assert proc.poll() is None and time.monotonic() < deadline, "record never listened"
+                time.sleep(0.05)
+        with sensor:
+            for frame in frames:
+                sensor.sendall(frame)
+                time.sleep(0.01)
+            _, stderr = proc.communicate(timeout=20.0)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    return proc.returncode, stderr
+
+
 def test_lost_samples_are_noted_not_filled(tmp_path):
     # A sensor dials in over TCP and skips one frame's sequence number: the
     # receiver counts that frame's samples as lost (README, The sensor wire format).
@@ -236,35 +264,14 @@ unit = "g"
 scale = 0.0005
 """)
     out = tmp_path / "gap.wav"
-    proc = subprocess.Popen([sys.executable, "-m", "monitor", "record", "-c", str(config), "-o", str(out),
-                             "--seconds", "1"], cwd=str(ROOT), env=env(), stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
     n = 256
     rng = np.random.default_rng(2)
     # 10 frames less the one skipped: 2304 samples, enough for 1 s (2048) and
     # within the receiver's 2 s queue, so none is dropped for being early.
     sent = [rng.integers(-2000, 2000, size=(n, 1)) for _ in range(10)]
-    try:
-        deadline = time.monotonic() + 20.0
-        while True:
-            try:
-                sensor = socket.create_connection(("127.0.0.1", port), timeout=2.0)
-                break
-            except OSError:
-                assert proc.poll() is None and time.monotonic() < deadline, "record never listened"
-                time.sleep(0.05)
-        with sensor:
-            for seq, samples in enumerate(sent):
-                if seq == 5:
-                    continue  # never sent: a gap of one frame
-                sensor.sendall(encode_frame(samples, seq))
-                time.sleep(0.01)
-            stdout, stderr = proc.communicate(timeout=20.0)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.wait()
-    assert proc.returncode == 0, stderr
+    # Frame 5 is never sent: a gap of one frame.
+    code, stderr = record_from_sensor(config, out, [encode_frame(x, seq) for seq, x in enumerate(sent) if seq != 5])
+    assert code == 0, stderr
     reader, data = read_ours(out)
     # Nothing was inserted: frames 0-4 and 6.. back to back, 1 s = 2048 samples.
     kept = np.concatenate(sent[:5] + sent[6:])[:2048]
@@ -366,3 +373,104 @@ scale = 0.001
     assert result.returncode == 1
     assert str(port) in result.stderr
     assert not out.exists()
+
+
+# ------------------------------------------------------------- --format
+
+
+def wave_read(path):
+    """Counts and parameters as the standard library's wave module reads them."""
+    with wave.open(str(path), "rb") as w:
+        raw = w.readframes(w.getnframes())
+        width = w.getsampwidth()
+        counts = np.frombuffer(raw, dtype={2: "<i2", 4: "<i4"}[width]).reshape(-1, w.getnchannels())
+        return w.getframerate(), width, counts
+
+
+def test_a_float32_recording_is_not_for_the_wave_module(five_seconds):
+    # Python's wave module reads integer PCM only (its documentation): the
+    # README says so, and points to --format int16/int32.
+    _, out, _, _, _ = five_seconds
+    with pytest.raises(wave.Error):
+        wave.open(str(out), "rb")
+
+
+@pytest.mark.parametrize("full_scale, step", [
+    # Floats with no --full-scale: 1000 g over 2^31 counts (README, Recordings).
+    (None, 1000 / 2 ** 31),
+    # full-scale range / 2^(bits-1) (common practice): 2 g over int32.
+    ("2", 2 / 2 ** 31),
+])
+def test_int32_from_floats_opens_in_the_wave_module(tmp_path, full_scale, step):
+    text = SIM.format(rate=4096.0, realtime="false")
+    config = write_config(tmp_path, text)
+    out = tmp_path / "int32.wav"
+    extra = [] if full_scale is None else ["--full-scale", full_scale]
+    result = bandwatch("record", "-c", config, "-o", out, "--seconds", "2", "--format", "int32", *extra)
+    assert result.returncode == 0, result.stderr
+    rate, width, counts = wave_read(out)
+    assert (rate, width, counts.shape) == (4096, 4, (2 * 4096, 2))
+    reader, ours = read_ours(out)
+    assert reader.metadata["scale"] == [pytest.approx(step, rel=1e-12)] * 2
+    expected = simulator_samples(text, 2 * 4096)
+    # Rounded to the nearest count: within half a step of the simulator's value.
+    assert np.max(np.abs(counts * step - expected)) <= step / 2 * 1.000001
+    assert np.array_equal(ours, counts)  # our reader gives the stored counts
+    assert "int32 counts of" in result.stderr.strip().splitlines()[-1]
+
+
+def test_int16_keeps_a_sensors_own_counts(tmp_path):
+    # An int16 sensor over TCP (README, The sensor wire format) recorded as
+    # int16: the file holds exactly the counts sent, readable by wave, and
+    # the metadata's scale is the config's.
+    port = free_port()
+    config = write_config(tmp_path, f"""
+[node]
+name = "fan-8"
+[source]
+kind = "tcp-server"
+port = {port}
+sample_rate = 2048.0
+channels = ["h", "v"]
+unit = "g"
+scale = [0.0005, -0.0005]
+""")
+    out = tmp_path / "counts.wav"
+    rng = np.random.default_rng(9)
+    sent = [rng.integers(-32768, 32768, size=(256, 2)) for _ in range(8)]
+    code, stderr = record_from_sensor(config, out, [encode_frame(x, seq) for seq, x in enumerate(sent)],
+                                      "--format", "int16")
+    assert code == 0, stderr
+    rate, width, counts = wave_read(out)
+    assert (rate, width) == (2048, 2)
+    assert np.array_equal(counts, np.concatenate(sent))
+    reader, _ = read_ours(out)
+    assert reader.metadata["scale"] == [0.0005, -0.0005]
+
+
+def test_an_integer_recording_replays_like_the_float_one(tmp_path, five_seconds):
+    # Our int32 recording needs no scale in the config: its metadata has it.
+    text, float_rec, _, _, _ = five_seconds
+    config = write_config(tmp_path, text + '[[band]]\nname = "1x"\norders = [0.8, 1.2]\nquantity = "velocity"\n'
+                          '[speed]\nrpm = 1500.0\n')
+    int_rec = tmp_path / "five32.wav"
+    made = bandwatch("record", "-c", config, "-o", int_rec, "--seconds", "5", "--format", "int32")
+    assert made.returncode == 0, made.stderr
+    tables = []
+    for rec in (float_rec, int_rec):
+        result = bandwatch("replay", "-c", config, rec)
+        assert result.returncode == 0, result.stderr
+        row = next(line.split() for line in result.stderr.splitlines() if line.startswith("1x "))
+        tables.append(float(row[5]))  # the band's max
+    # float32 keeps 24 bits, int32 here steps of 1000 g / 2^31: both far finer than 1e-5 of the value.
+    assert tables[1] == pytest.approx(tables[0], rel=1e-5)
+
+
+def test_full_scale_needs_an_integer_format(tmp_path):
+    config = write_config(tmp_path, SIM.format(rate=4096.0, realtime="false"))
+    out = tmp_path / "x.wav"
+    result = bandwatch("record", "-c", config, "-o", out, "--seconds", "1", "--full-scale", "2", timeout=30)
+    assert result.returncode == 2 and "--full-scale" in result.stderr and not out.exists()
+    result = bandwatch("record", "-c", config, "-o", out, "--seconds", "1", "--format", "int16",
+                       "--full-scale", "-1", timeout=30)
+    assert result.returncode == 2 and "-1" in result.stderr and not out.exists()
