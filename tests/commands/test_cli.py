@@ -677,3 +677,45 @@ def test_check_creates_no_state_folder(tmp_path):
     result = bandwatch("check", "-c", str(path), timeout=30)
     assert result.returncode == 0, result.stderr
     assert not (tmp_path / "never").exists()
+
+
+def _readme_commands():
+    """Every `bandwatch ... -c ...` command line the README shows, in code
+    blocks and inline, as written (pipes and redirections cut off)."""
+    blocks = re.findall(r"```[a-z]*\n(.*?)```", README, re.S)
+    lines = [line.strip() for block in blocks for line in block.splitlines()]
+    lines += [" ".join(span.split()) for span in re.findall(r"`([^`]+)`", re.sub(r"```[a-z]*\n.*?```", "", README,
+                                                                                 flags=re.S))]
+    commands = []
+    for line in lines:
+        line = re.sub(r"^sudo -u bandwatch ", "", line)
+        if line.startswith("bandwatch ") and " -c " in line:
+            commands.append(re.split(r"\s(?:\||2?>)", line)[0])
+    return commands
+
+
+@pytest.mark.parametrize("line", sorted(set(_readme_commands())))
+def test_every_command_line_in_the_readme_parses(line):
+    # Optional parts in [brackets] are taken as given; placeholders for
+    # numbers and choices get a value, the others (FILE, REC) stay as written.
+    import argparse
+    import shlex
+
+    from monitor.commands.cli import _parser
+
+    values = {"S": "10", "X": "2", "F": "int16"}
+    words = [values.get(w, w) for w in shlex.split(re.sub(r"\[([^\[\]]*?)( \.\.\.)?\]", r"\1", line))]
+    assert words[0] == "bandwatch"
+    try:
+        args = _parser().parse_args(words[1:])
+    except SystemExit as exc:  # argparse's way of refusing
+        raise AssertionError(f"the README's `{line}` is refused by the parser") from exc
+    assert isinstance(args, argparse.Namespace)
+
+
+def test_the_readme_says_how_to_put_bandwatch_on_the_path():
+    # After the two set-up commands the venv holds bandwatch; the README says
+    # to activate it before the first `bandwatch` command it shows.
+    first = README.index("bandwatch view -c config/demo.toml")
+    assert README.index(". .venv/bin/activate") < first
+    assert 0 < README.index("sh scripts/demo") < README.index(". .venv/bin/activate")
