@@ -289,12 +289,16 @@ class Monitor:
     def feed(self, block: Block) -> None:
         """Take one block of raw samples through every stage."""
         if block.lost:
-            # No frame may span a gap: start the ring and the average afresh.
+            # No frame may span a gap, so the ring fills afresh; the power of
+            # the frames already averaged stays, so the gap costs one frame.
+            # An outage longer than a result's span restarts the average:
+            # spectra from before it describe another moment of the machine.
             self._samples += block.lost
             self.ring.clear()
-            self.stage.reset()
-            if self.envelope is not None:
-                self.envelope.reset()
+            if block.lost >= self.config.spectrum.span:
+                self.stage.reset()
+                if self.envelope is not None:
+                    self.envelope.reset()
             self._pending = self.config.spectrum.size
         n = block.samples.shape[0]
         counters = self.source.counters() if hasattr(self.source, "counters") else None
@@ -429,8 +433,8 @@ class Monitor:
         payload = stamp(self.node, result.stream_s)
         unit = self.config.source.unit
         # Called within the frame that made `result`: the ring still holds
-        # exactly the samples the result covers.
-        stats = time_stats(self.ring.latest(self.config.spectrum.span))
+        # the samples the result covers (since the last gap, if one was nearer).
+        stats = time_stats(self.ring.latest(min(self.ring.count, self.config.spectrum.span)))
         channels = {}
         for i, name in enumerate(self.config.source.channels):
             channels[name] = {
