@@ -158,3 +158,22 @@ def test_a_port_in_use_is_a_clear_error():
             source.open()
     finally:
         taken.close()
+
+
+def test_a_flood_drops_the_oldest_blocks_and_counts_every_sample(udp):
+    # UDP cannot push back: with nothing read, the queue (2 s of samples)
+    # keeps the newest blocks and reports the dropped ones as lost.
+    source, send = udp
+    count = 400
+    for k in range(count):
+        send(encode_frame(frame_samples(k), seq=k))
+    assert wait_until(lambda: source.counters()["frames"] == count, 5.0)
+    assert source.queued <= source.queue_limit
+    assert source.counters()["overflows"] > 0 and source.counters()["paused"] == 0
+    blocks = []
+    block = source.read(0.0)
+    while block is not None:
+        blocks.append(block)
+        block = source.read(0.0)
+    assert sum(len(b.samples) + b.lost for b in blocks) == count * N
+    assert np.array_equal(blocks[-1].samples[-1], frame_samples(count - 1)[-1])

@@ -8,10 +8,14 @@ udp) shares this machinery:
   a bounded queue. `read(timeout)` only ever waits on that queue.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
-  wide streams). When it is full the oldest block is dropped, its samples are
-  added to the `lost` of the block that follows it, and `overflows` counts
-  it: a peer that floods the link, or a measuring thread that falls behind,
-  costs samples but never memory, and stream time still counts every sample.
+  wide streams). When it is full, a link that can push back (TCP) stops
+  reading until there is room: the kernel's buffers fill and TCP flow control
+  slows the sender, so a burst is read late but whole (`paused` counts the
+  stops). A link that cannot push back (serial, UDP) drops the oldest block
+  instead: its samples are added to the `lost` of the block that follows it,
+  and `overflows` counts it. Either way a peer that floods the link, or a
+  measuring thread that falls behind, never costs memory, and stream time
+  still counts every sample.
 
 * Link kinds reconnect after a failure with exponential backoff (0.1 s,
   doubling, at most 3 s) and log once per outage, not once per attempt.
@@ -28,7 +32,7 @@ is used rather than frame timestamps because a sensor that rebooted may have
 restarted its clock.
 
 Counters: `counters()` returns the link's own (connects, disconnects, bytes,
-overflows) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
+overflows, paused) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
 gaps, lost_samples, mismatched, nonfinite), for health checks.
 """
 
@@ -60,7 +64,7 @@ POLL_S = 0.1
 JOIN_S = 1.0
 READ_MAX = 65536
 
-LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows")
+LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
 
 def endpoint(host: str, port: int) -> str:
@@ -92,7 +96,11 @@ class StreamSource(Source):
     """Base of byte-stream kinds. A kind implements `_loop` (run in the
     reader thread until `self._stop` is set), and may override `_prepare`
     (before the thread starts; raise SourceError for a fault that retrying
-    cannot mend), `_wake` (unblock the thread) and `_release` (after it)."""
+    cannot mend), `_wake` (unblock the thread) and `_release` (after it).
+    A kind whose link has flow control sets `pushes_back`: its reader waits
+    for room in the queue instead of dropping the oldest block."""
+
+    pushes_back = False
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -157,6 +165,8 @@ class StreamSource(Source):
             return
         self._stop.set()
         self._wake()
+        with self._ready:
+            self._ready.notify_all()  # a reader waiting for room
         thread.join(JOIN_S)
         if thread.is_alive():
             log.warning("%s: reader thread did not stop within %g s", self.describe(), JOIN_S)
@@ -175,6 +185,8 @@ class StreamSource(Source):
                 self._ready.wait(left)
             block = self._queue.popleft()
             self._queued -= block.samples.shape[0]
+            if self.pushes_back:
+                self._ready.notify_all()  # room for a reader that waits
             if self._dropped:
                 # The dropped blocks came just before this one.
                 block = block._replace(lost=block.lost + self._dropped)
@@ -279,10 +291,18 @@ class StreamSource(Source):
         self._put(Block(samples, lost, full_scale, stamp))
 
     def _put(self, block: Block) -> None:
+        size = block.samples.shape[0]
         with self._ready:
+            if self.pushes_back and self._queue and self._queued + size > self.queue_limit:
+                # Not reading is what pushes back: the kernel's receive
+                # buffer fills and TCP closes the sender's window.
+                self._link["paused"] += 1
+                while self._queue and self._queued + size > self.queue_limit and not self._stop.is_set():
+                    self._tick()
+                    self._ready.wait(POLL_S)
             self._queue.append(block)
-            self._queued += block.samples.shape[0]
-            while self._queued > self.queue_limit and len(self._queue) > 1:
+            self._queued += size
+            while not self.pushes_back and self._queued > self.queue_limit and len(self._queue) > 1:
                 old = self._queue.popleft()
                 size = old.samples.shape[0]
                 self._queued -= size
