@@ -179,6 +179,8 @@ class HealthConfig:
     flatline: float = 5.0  # s without any change on a channel
     rate: float = 0.01  # relative disagreement of timestamps with sample_rate
     nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
+    hysteresis: float = 0.2  # a fault clears below limit * (1 - hysteresis)
+    hold: float = 10.0  # s below that before a fault clears
 
 
 @dataclass(frozen=True)
@@ -756,6 +758,8 @@ def _read_health(t: _Table) -> HealthConfig:
         flatline=t.get_float("flatline", 5.0, lo=0.0, lo_open=True, hi=86400.0),
         rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
         nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
+        hysteresis=t.get_float("hysteresis", 0.2, lo=0.0, hi=0.99),
+        hold=t.get_float("hold", 10.0, lo=0.0, hi=86400.0),
     )
     t.finish()
     return health

@@ -15,6 +15,11 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
+Every check raises its fault as soon as the value reaches the limit (nyquist
+after 2 s), and clears it only once the value has stayed below
+limit * (1 - hysteresis) for `hold` seconds of stream time, so a value that
+hovers at its limit gives one fault, not a storm.
+
 Counts come from the source's cumulative counters (`counters()`, where the
 source has them), differenced over a sliding window of stream time.
 """
@@ -59,9 +64,9 @@ class Health:
         self.channels = list(channels)
         self.fs = sample_rate
 
-        def check(name: str, channel: Optional[str], unit: str, limit: float, hysteresis: float = 0.0,
-                  delay: float = 0.0) -> Check:
-            return Check(name, channel, unit, LevelMachine([("fault", limit)], hysteresis, delay))
+        def check(name: str, channel: Optional[str], unit: str, limit: float, delay: float = 0.0) -> Check:
+            rule = LevelMachine([("fault", limit)], config.hysteresis, delay, config.hold)
+            return Check(name, channel, unit, rule)
 
         self.stale = check("stale", None, "s", config.stale)
         self.gap = check("gap", None, "count", 1.0)
@@ -69,9 +74,9 @@ class Health:
         self.rate = check("rate", None, "share", config.rate)
         self.clipping = [check("clipping", c, "share", config.clipping) for c in self.channels]
         self.flatline = [check("flatline", c, "s", config.flatline) for c in self.channels]
-        # Nyquist strip: a little hysteresis and delay, since the share of a noisy
-        # spectrum wavers around any limit.
-        self.nyquist = [check("nyquist", c, "share", config.nyquist, 0.2, 2.0) for c in self.channels]
+        # Nyquist strip: a delay before the fault too, since the share of a
+        # noisy spectrum wavers from one result to the next.
+        self.nyquist = [check("nyquist", c, "share", config.nyquist, 2.0) for c in self.channels]
         self.queue = check("queue", None, "count", 1.0)
         self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
@@ -83,6 +88,7 @@ class Health:
             + [self.queue, self.config_check]
         )
         self._dropped_base = 0
+        self._refused = 0.0  # the config check's value, fed on with every block
         # Counter snapshots over the window, oldest first; the first stands
         # for "before any sample", so a fresh monitor judges all it has seen.
         self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
@@ -123,6 +129,8 @@ class Health:
         `start_index`; `t` is the stream time of its last sample."""
         out: List[Change] = []
         self._update(self.stale, 0.0, t, out)
+        # Fed on so that a fault can clear once its hold time has passed.
+        self._update(self.config_check, self._refused, t, out)
         totals: Dict[str, float] = dict(counters or {})
         self._count_block(raw, lost, full_scale, totals)
         self._windowed(t, totals, lost > 0, out)
@@ -155,7 +163,8 @@ class Health:
     def on_config(self, refused: bool, t: float) -> List[Change]:
         """The outcome of a reload: refused (a bad file) or taken."""
         out: List[Change] = []
-        self._update(self.config_check, 1.0 if refused else 0.0, t, out)
+        self._refused = 1.0 if refused else 0.0
+        self._update(self.config_check, self._refused, t, out)
         return out
 
     # ------------------------------------------------------------ details

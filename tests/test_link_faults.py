@@ -71,19 +71,20 @@ def step_counts(seconds=30.0, seed=3):
     return np.round(x / SCALE).astype(np.int16)[:, None]
 
 
-def encode(counts, broken=0.0, garbage=0.0, seed=7):
+def encode(counts, broken=0.0, garbage=0.0, seed=7, broken_at=()):
     """Frames of FRAME samples with rising sequence numbers. A share `broken`
-    of them has one payload byte flipped (the CRC fails), and `garbage`
-    random bytes precede a share of them. Returns the bytes and the number
-    of samples in good frames."""
+    of them, and those numbered in `broken_at`, have one payload byte flipped
+    (the CRC fails), and `garbage` random bytes precede a share of them.
+    Returns the bytes and the number of samples in good frames."""
     rng = np.random.default_rng(seed)
+    broken_at = set(broken_at)
     out = []
     good = 0
     for k, start in enumerate(range(0, len(counts), FRAME)):
         frame = bytearray(encode_frame(counts[start : start + FRAME], seq=k))
         if rng.random() < garbage:
             out.append(rng.integers(0, 256, int(rng.integers(1, 64)), dtype=np.uint8).tobytes())
-        if rng.random() < broken:
+        if rng.random() < broken or k in broken_at:
             frame[20 + int(rng.integers(0, 2 * FRAME))] ^= 0x5A
         else:
             good += len(counts[start : start + FRAME])
@@ -202,3 +203,38 @@ def test_a_burst_over_tcp_gives_the_events_of_a_replay_of_the_same_samples(tmp_p
     assert [(e["name"], e["level"]) for e in expected if e["kind"] == "band"] == [
         ("tone", "warning"), ("tone", "alarm"), ("tone", "warning"), ("tone", "normal")]
     assert comparable(live) == comparable(expected)
+
+
+def health_changes(sink, name):
+    return [(e["stream_s"], e["level"]) for e in sink.of("event") if e["kind"] == "health" and e["name"] == name]
+
+
+def test_a_corrupt_share_hovering_at_its_limit_gives_one_fault_and_one_clear():
+    # For the first 60 s about one frame in 100 fails its CRC: over the 10 s
+    # window (400 frames) the share sits at the default limit of 0.01, a
+    # little above or below it as frames enter and leave the window. Then
+    # the link is clean for 40 s.
+    rng = np.random.default_rng(11)
+    per_s = FS // FRAME
+    broken_at = [k * 100 + int(rng.integers(-10, 10 + 1)) for k in range(1, 60 * per_s // 100)]
+    counts = step_counts(seconds=100.0)
+    data, good = encode(counts, broken_at=broken_at)
+    last_broken_s = (broken_at[-1] + 1) * FRAME / FS
+    # Without hysteresis and hold (how the checks behaved before) the same
+    # stream makes the check chatter: that is the storm prevented below.
+    chatter = config_on_any_port(NOISY + "[health]\nhysteresis = 0.0\nhold = 0.0\n")
+    _, sink, _ = run_over_tcp(chatter, data, good)
+    toggles = len(health_changes(sink, "corrupt"))
+    _, sink, counters = run_over_tcp(config_on_any_port(NOISY), data, good)
+    # A false sync inside a broken frame's bytes may count once more.
+    assert counters["gaps"] == len(broken_at) and counters["corrupt_frames"] >= len(broken_at)
+    corrupt = health_changes(sink, "corrupt")
+    print(f"corrupt share at its limit: {toggles} changes without hysteresis and hold, "
+          f"{len(corrupt)} with the defaults: {corrupt}; last broken frame at {last_broken_s:.2f} s")
+    assert toggles >= 6
+    assert [level for _, level in corrupt] == ["fault", "normal"]
+    # The clear comes after the corruption stopped, and no later than the
+    # window (10 s) plus the hold (10 s) after it (README, [health]).
+    assert last_broken_s < corrupt[1][0] <= last_broken_s + 10.0 + 10.0 + 0.2
+    # Every broken frame is also a gap: one fault, one clear as well.
+    assert [level for _, level in health_changes(sink, "gap")] == ["fault", "normal"]

@@ -352,7 +352,8 @@ class FakeClock:
 
 
 def test_stale_fault_raised_and_cleared():
-    config = make(extra="[health]\nstale = 2.0\n")
+    # No hold: the fault clears with the first block after the silence.
+    config = make(extra="[health]\nstale = 2.0\nhold = 0.0\n")
     clock = FakeClock()
     source = QuietSource(config.source, clock, tones(4096, [[(50.0, 1.0)], [(50.0, 1.0)]]))
     sink = ListSink()
