@@ -181,6 +181,7 @@ class HealthConfig:
     nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
     hysteresis: float = 0.2  # a fault clears below limit * (1 - hysteresis)
     hold: float = 10.0  # s below that before a fault clears
+    blind: Optional[float] = None  # s of samples without a result; None: from [spectrum]
 
 
 @dataclass(frozen=True)
@@ -760,6 +761,7 @@ def _read_health(t: _Table) -> HealthConfig:
         nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
         hysteresis=t.get_float("hysteresis", 0.2, lo=0.0, hi=0.99),
         hold=t.get_float("hold", 10.0, lo=0.0, hi=86400.0),
+        blind=t.get_float("blind", None, lo=0.0, lo_open=True, hi=86400.0) if t.has("blind") else None,
     )
     t.finish()
     return health

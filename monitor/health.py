@@ -12,6 +12,7 @@ the bands, with the levels `normal` and `fault` (spec section 4):
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | nyquist  | channel | share of the power in the top 10 % below Nyquist         | `nyquist`           |
+| blind    | source  | seconds of samples received since the last result        | `blind`, or from the span |
 | queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
@@ -38,6 +39,9 @@ from .spectrum import Spectrum
 # Counter snapshots are taken at most this often (stream seconds), which
 # bounds the window's memory whatever the block size.
 _SNAPSHOT_S = 0.1
+# Without a configured `blind`, the check allows twice what a result needs
+# from a standing start, and never less than this (seconds).
+BLIND_MIN_S = 5.0
 # Timestamps must span this much stream time before the rate is judged, so
 # that arrival jitter of single frames does not count.
 _RATE_BASELINE_S = 5.0
@@ -59,7 +63,8 @@ Change = Tuple[Check, Tuple[str, str]]
 class Health:
     """Every health check of one monitor, fed by the pipeline."""
 
-    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float) -> None:
+    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float, span: int = 0) -> None:
+        """`span`: samples one result covers, for the default `blind` limit."""
         self.config = config
         self.channels = list(channels)
         self.fs = sample_rate
@@ -77,6 +82,9 @@ class Health:
         # Nyquist strip: a delay before the fault too, since the share of a
         # noisy spectrum wavers from one result to the next.
         self.nyquist = [check("nyquist", c, "share", config.nyquist, 2.0) for c in self.channels]
+        # Samples arrive but give no result (gaps closer than a frame, say).
+        blind = config.blind if config.blind is not None else max(BLIND_MIN_S, 2.0 * span / sample_rate)
+        self.blind = check("blind", None, "s", blind)
         self.queue = check("queue", None, "count", 1.0)
         self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
@@ -85,8 +93,9 @@ class Health:
             + self.flatline
             + [self.rate]
             + self.nyquist
-            + [self.queue, self.config_check]
+            + [self.blind, self.queue, self.config_check]
         )
+        self._unmeasured = 0  # samples received since the last result
         self._dropped_base = 0
         self._refused = 0.0  # the config check's value, fed on with every block
         # Counter snapshots over the window, oldest first; the first stands
@@ -131,6 +140,8 @@ class Health:
         self._update(self.stale, 0.0, t, out)
         # Fed on so that a fault can clear once its hold time has passed.
         self._update(self.config_check, self._refused, t, out)
+        self._unmeasured += raw.shape[0]
+        self._update(self.blind, self._unmeasured / self.fs, t, out)
         totals: Dict[str, float] = dict(counters or {})
         self._count_block(raw, lost, full_scale, totals)
         self._windowed(t, totals, lost > 0, out)
@@ -139,7 +150,10 @@ class Health:
         return out
 
     def on_spectrum(self, spectrum: Spectrum, t: float) -> List[Change]:
+        """A result's spectrum."""
         out: List[Change] = []
+        self._unmeasured = 0
+        self._update(self.blind, 0.0, t, out)
         if self._top_line is None:
             lines = spectrum.psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.

@@ -158,7 +158,7 @@ class Monitor:
         # could never change anything), so most values skip that call.
         self._learners = [base if b.baseline is not None else None
                           for (b, _), base in zip(self.bank.pairs, self.baselines)]
-        self.health = Health(cfg.health, cfg.source.channels, self.fs)
+        self.health = Health(cfg.health, cfg.source.channels, self.fs, cfg.spectrum.span)
         if previous:
             keyed = [((b.name, self.config.source.channels[ch]), rule)
                      for (b, ch), rule in zip(self.bank.pairs, self.band_rules)]

@@ -26,7 +26,9 @@ memory, as a node would that starts with the recording.
 
 Gaps noted in a bandwatch recording (`"lost"` in its metadata, see
 `record.py`) are put back as the losses they were, so a replay's stream
-times and results match the live run's.
+times and results match the live run's. A block of the recording holding
+NaN or infinity is dropped as the file source drops it (a gap, counted by
+the `corrupt` check), and the table says how many were.
 
 The trend history for the plot keeps one row of band values per result up
 to HISTORY_ROWS rows; beyond that, neighbouring rows are merged two into
@@ -108,7 +110,8 @@ class _ReplaySource(Source):
         self._gap_at = collections.deque(sorted(gaps))  # indices still ahead, first first
         self.max_block = max(1, max_block)
         self.full_scale = full_scale
-        self.position = 0  # samples of the file handed out
+        self.position = 0  # samples of the file handed out or dropped
+        self.dropped = 0  # of those, dropped for NaN or infinity
         self.before_read: Callable[[], None] = lambda: None
         self._pending: Optional[np.ndarray] = None
 
@@ -119,23 +122,40 @@ class _ReplaySource(Source):
     def _close(self) -> None:
         self.inner.close()
 
+    def counters(self) -> Dict[str, int]:
+        return self.inner.counters()  # the file source's blocks, not these pieces of them
+
     def _read(self, timeout: float) -> Optional[Block]:
         self.before_read()
+        lost = 0
         if self._pending is None or not len(self._pending):
             block = self.inner.read(timeout)
             if block is None:
                 self.ended = self.inner.ended
                 return None
             self._pending = block.samples
+            if block.lost:
+                lost = self._dropped(block.lost)
         n = min(len(self._pending), self.max_block)
-        lost = 0
         if self._gap_at and self._gap_at[0] == self.position:
-            lost = self.gaps.pop(self._gap_at.popleft())
+            lost += self.gaps.pop(self._gap_at.popleft())
         if self._gap_at and self._gap_at[0] < self.position + n:
             n = self._gap_at[0] - self.position  # a gap starts a block of its own
         samples, self._pending = self._pending[:n], self._pending[n:]
         self.position += n
         return Block(samples, lost, self.full_scale)
+
+    def _dropped(self, count: int) -> int:
+        """`count` file samples the file source dropped (a block holding NaN
+        or infinity): skipped, with any gap noted among them; returns the
+        samples lost there."""
+        end = self.position + count
+        lost = count
+        while self._gap_at and self._gap_at[0] < end:
+            lost += self.gaps.pop(self._gap_at.popleft())
+        self.position = end
+        self.dropped += count
+        return lost
 
 
 class _EventSink(Sink):
@@ -286,6 +306,8 @@ class Replayed:
     played: int  # file samples taken through the pipeline
     lost: int  # samples put back from the gap notes
     gaps: int
+    dropped: int  # file samples dropped in blocks holding NaN or infinity
+    dropped_blocks: int
     tally: Tally
     events: Dict[Tuple[str, str, Optional[str]], int]
     history: Optional[History]
@@ -400,7 +422,8 @@ def replay(
         source.close()
     if progress is not None:
         progress.clear()
-    return Replayed(recording, cfg, fs, frames, source.position, source.lost, len(gaps) - len(source.gaps),
+    return Replayed(recording, cfg, fs, frames, source.position - source.dropped, source.lost - source.dropped,
+                    len(gaps) - len(source.gaps), source.dropped, source.inner.rejected,
                     tally, sink.counts, history, state["worst"], source.position < frames)
 
 
@@ -459,8 +482,11 @@ def write_table(rep: Replayed, err: TextIO) -> None:
     if rep.gaps:
         head += f"; {rep.lost} lost samples put back in {rep.gaps} gap(s)"
     err.write(head + "\n")
+    if rep.dropped_blocks:
+        err.write(f"{rep.dropped_blocks} block(s) holding NaN or infinity dropped ({rep.dropped} samples), "
+                  "each a gap, counted by the corrupt check\n")
     if rep.stopped:
-        err.write(f"stopped after {rep.played / fs:.6g} of {rep.seconds:.6g} s\n")
+        err.write(f"stopped after {(rep.played + rep.dropped) / fs:.6g} of {rep.seconds:.6g} s\n")
     if t.results == 0:
         span = rep.config.spectrum.span / fs
         err.write(f"no result: one needs {span:.6g} s of samples without a gap\n")

@@ -41,7 +41,7 @@ SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "channels", "bands"}
 SUMMARY_CHANNEL_FIELDS = {"rms", "peak", "crest", "kurtosis", "velocity_rms", "dominant_hz", "dominant_rms", "unit"}
 SUMMARY_BAND_FIELDS = {"name", "channel", "value", "unit", "level", "limits"}
 LIMITS_FIELDS = {"warning", "alarm"}
-HEALTH_CHECKS = {"stale", "gap", "corrupt", "clipping", "flatline", "nyquist", "rate", "queue", "config"}
+HEALTH_CHECKS = {"stale", "gap", "corrupt", "clipping", "flatline", "nyquist", "rate", "blind", "queue", "config"}
 EVENT_FIELDS = COMMON_FIELDS | {
     "id", "kind", "name", "channel", "level", "previous", "value", "limits", "unit", "quantity",
     "speed_hz", "dominant_hz",
@@ -351,7 +351,7 @@ def test_levels_payload_lists_every_band_and_health_check(run_60s):
             else:
                 assert all(isinstance(v, float) for v in row["limits"].values()), row
         names = {r["name"] for r in levels["levels"]}
-        assert {"overall", "1x", "2x", "high", "stale"} <= names
+        assert {"overall", "1x", "2x", "high"} | HEALTH_CHECKS <= names
 
 
 def test_speed_is_near_the_demo_rpm(run_60s):

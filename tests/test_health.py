@@ -11,6 +11,9 @@ FS = 1000.0
 
 
 def health(**kw):
+    # Most tests feed blocks and no results: `blind` is kept out of their way
+    # and tested on its own.
+    kw.setdefault("blind", 3600.0)
     return Health(HealthConfig(**kw), ["x", "y"], FS)
 
 
@@ -135,8 +138,26 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("nyquist", "x"), ("nyquist", "y"), ("queue", None), ("config", None),
+        ("nyquist", "x"), ("nyquist", "y"), ("blind", None), ("queue", None), ("config", None),
     }
+
+
+def test_blind_when_samples_arrive_but_no_result_comes():
+    # Its default limit: twice the samples a result needs from a standing
+    # start (here 1.5 s), but at least 5 s (a choice of this project).
+    assert Health(HealthConfig(), ["x"], FS, span=1500).blind.rule.limits == [("fault", 5.0)]
+    assert Health(HealthConfig(), ["x"], FS, span=4000).blind.rule.limits == [("fault", 8.0)]
+    h = health(blind=2.0, hold=1.0)
+    spec = SpectralStage(FS, 256, "hann", 1, 2).push(noise(256).T)
+    out = []
+    for k in range(60):  # 0.1 s blocks; results up to 1 s, none from 1 s to 4 s, then again
+        t = (k + 1) * 0.1 - 1 / FS
+        out += [(round(t, 3), *x) for x in names(h.on_block(noise(100, k), k * 100, 0, t, None, None, None))]
+        if k < 10 or k >= 40:
+            out += [(round(t, 3), *x) for x in names(h.on_spectrum(spec, t))]
+    # Raised once 2 s of samples came without a result (at 2.999 s), cleared
+    # 1 s (the hold) after results are back at 4.099 s.
+    assert out == [(2.999, "blind", None, "fault"), (5.099, "blind", None, "normal")]
 
 
 def test_queue_fault_from_first_drop_until_the_queue_empties():

@@ -125,10 +125,6 @@ class StreamSource(Source):
 
     # ------------------------------------------------------------ interface
 
-    def describe(self) -> str:
-        """Kind and address, for log lines and errors."""
-        return self.kind
-
     @property
     def queued(self) -> int:
         """Samples per channel waiting in the queue now."""
