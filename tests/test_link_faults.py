@@ -1,10 +1,11 @@
 """The whole monitor on a misbehaving link: real TCP sockets on loopback.
 
-An invented scenario: a 50 Hz tone whose RMS steps from 0.5 to 2 at 10 s and
-to 5 at 20 s, against a band with warning 1 and alarm 3, sent as 256-sample
-int16 frames. The same samples go once over a clean link and once over a
-noisy one (CRC-broken frames, garbage between frames); the noisy run is held
-against the clean one.
+Invented scenarios: a 50 Hz tone whose RMS steps between levels, against a
+band with warning 1 and alarm 3, sent as 256-sample int16 frames. A noisy
+link (CRC-broken frames, garbage between frames) is held against a clean one
+with the same samples; a 60 s burst sent at once against `replay` of the
+same samples; a corrupt share hovering at its limit against the rule of
+README's [health] table.
 """
 
 import dataclasses
