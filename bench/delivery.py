@@ -59,12 +59,12 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import paho.mqtt.client as mqtt  # noqa: E402
 
-from monitor.bench import _BytesSource, _bench_config, run_pipeline, synthetic_samples, wire_chunks  # noqa: E402
+from monitor.commands.bench import _BytesSource, _bench_config, run_pipeline, synthetic_samples, wire_chunks  # noqa: E402
 from monitor.config import Config, parse  # noqa: E402
-from monitor.delivery.base import Payload, Sink  # noqa: E402
-from monitor.delivery.mqtt import MqttSink  # noqa: E402
-from monitor.pipeline import Monitor  # noqa: E402
-from monitor.state import EventIds  # noqa: E402
+from monitor.deliver.base import Payload, Sink  # noqa: E402
+from monitor.deliver.mqtt import MqttSink  # noqa: E402
+from monitor.service.monitor import Monitor  # noqa: E402
+from monitor.deliver.event_ids import EventIds  # noqa: E402
 
 RATE = 25600.0
 CHANNELS = ("x", "y", "z")
