@@ -18,12 +18,12 @@ import wave
 
 import numpy as np
 
+from monitor.acquire.decoders.frame import encode_frame
+from monitor.acquire.sources import open_source
+from monitor.commands.replay import replay
 from monitor.config import parse
-from monitor.decoders.frame import encode_frame
-from monitor.pipeline import Monitor
-from monitor.replay import replay
-from monitor.sources import open_source
-from test_pipeline import ListSink
+from monitor.service.monitor import Monitor
+from rig import ListSink
 
 FS = 10240
 FRAME = 256
