@@ -65,7 +65,8 @@ from monitor.config import Config, parse  # noqa: E402
 from monitor.deliver.base import Payload, Sink  # noqa: E402
 from monitor.deliver.payloads import encode  # noqa: E402
 from monitor.service.monitor import Monitor  # noqa: E402
-from monitor.acquire.sources.base import Block, Source  # noqa: E402
+from monitor.acquire.block import Block  # noqa: E402
+from monitor.acquire.sources.base import Source  # noqa: E402
 from monitor.deliver.event_ids import EventIds  # noqa: E402
 
 RATE = 5120.0
@@ -296,7 +297,7 @@ class SoakSource(Source):
         lost, self._lost = self._lost, 0
         self._pos += n
         self._clock.now += n / self.sample_rate
-        return Block(samples, lost)
+        return Block(samples=samples, lost=lost)
 
     def _do(self, action: Action, timeout: float) -> None:
         if action.kind == "rise":

@@ -29,6 +29,7 @@ from typing import Any, Dict, Iterator, List, Optional, Sequence
 import numpy as np
 
 from .. import __version__
+from ..deliver.payloads import utc_now, utc_text
 from ..errors import SourceError
 
 META_ID = b"bwmd"
@@ -49,14 +50,8 @@ class RecordingError(SourceError):
     """A recording that cannot be written or read, naming the file and the problem."""
 
 
-def _iso_utc(when: _dt.datetime) -> str:
-    if when.tzinfo is None:
-        raise ValueError(f"{when=} has no time zone; give an aware datetime (UTC)")
-    when = when.astimezone(_dt.timezone.utc)
-    return when.strftime("%Y-%m-%dT%H:%M:%S.") + f"{when.microsecond // 1000:03d}Z"
-
-
 def _parse_utc(text: Any) -> Optional[_dt.datetime]:
+    """The time in a `start_time` written by `utc_text` (a naive one taken as UTC)."""
     if not isinstance(text, str):
         return None
     try:
@@ -102,9 +97,10 @@ class RecordingWriter:
         meta.update(
             channels=list(channels),
             unit=unit,
-            start_time=_iso_utc(start_time or _dt.datetime.now(_dt.timezone.utc)),
+            start_time=utc_text(start_time) if start_time is not None else utc_now(),
             bandwatch_version=__version__,
         )
+        self.metadata = meta
         header = self._header(json.dumps(meta, ensure_ascii=False).encode("utf-8"))
         try:
             self._file = open(self.path, "wb")
@@ -120,7 +116,11 @@ class RecordingWriter:
                           self._align, 32, 0)
         parts = [b"RIFF", b"\0\0\0\0", b"WAVE", _CHUNK.pack(b"fmt ", len(fmt)), fmt]
         self._fact_at = sum(map(len, parts)) + 8
-        parts += [_CHUNK.pack(b"fact", 4), b"\0\0\0\0", _CHUNK.pack(META_ID, len(meta)), meta]
+        parts += [_CHUNK.pack(b"fact", 4), b"\0\0\0\0"]
+        # Where the metadata's body lies, for a caller that rewrites it in
+        # place with the same length (`bandwatch record`'s gap notes).
+        self.metadata_span = (sum(map(len, parts)) + 8, len(meta))
+        parts += [_CHUNK.pack(META_ID, len(meta)), meta]
         if len(meta) % 2:
             parts.append(b"\0")  # chunks start at even offsets
         self._data_size_at = sum(map(len, parts)) + 4

@@ -20,15 +20,9 @@ from typing import Any, Dict, List, Mapping, NamedTuple, Optional, Sequence, Tup
 
 import numpy as np
 
-from ..config import BandConfig, quantity_unit
+from ..config import BandConfig
 from .spectrum import Spectrum
-
-STANDARD_GRAVITY = 9.80665  # m/s^2, exact (CGPM 1901, ISO 80000-3)
-TO_SI = {"g": STANDARD_GRAVITY, "m/s2": 1.0}
-
-# Broadband velocity severity range for machines above 600 r/min
-# (ISO 10816-3 / ISO 20816-3).
-SEVERITY_HZ = (10.0, 1000.0)
+from .units import ISO_VELOCITY_HZ, TO_SI, quantity_unit
 
 
 def line_weights(lo: float, hi: float, bin_hz: float, lines: int) -> np.ndarray:
@@ -129,9 +123,9 @@ class BandBank:
         for n, (band, rows, fixed, labels) in enumerate(self._groups):
             if rows == list(range(rows[0], rows[0] + len(rows))):
                 self._groups[n] = (band, slice(rows[0], rows[0] + len(rows)), fixed, labels)
-        top = min(SEVERITY_HZ[1], bin_hz * (lines - 1))
+        top = min(ISO_VELOCITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines) * line_weights(
-            SEVERITY_HZ[0], top, bin_hz, lines
+            ISO_VELOCITY_HZ[0], top, bin_hz, lines
         )
 
     def _weights(self, band: BandConfig, edges: Tuple[float, float]) -> Tuple[int, np.ndarray]:

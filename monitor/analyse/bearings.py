@@ -15,7 +15,10 @@ bands are given a width rather than a single line.
 """
 
 import math
-from typing import Dict
+from typing import TYPE_CHECKING, Dict
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..config.schema import BearingConfig
 
 DEFECTS = ("bpfo", "bpfi", "bsf", "ftf")
 
@@ -34,3 +37,9 @@ def defect_orders(elements: int, element_diameter: float, pitch_diameter: float,
         "bpfi": elements / 2.0 * (1.0 + ratio),
         "bsf": pitch_diameter / (2.0 * element_diameter) * (1.0 - ratio * ratio),
     }
+
+
+def bearing_orders(bearing: "BearingConfig") -> Dict[str, float]:
+    """Defect orders of a `[[bearing]]` table."""
+    return defect_orders(bearing.elements, bearing.element_diameter, bearing.pitch_diameter,
+                         bearing.contact_angle)

@@ -13,7 +13,9 @@ from typing import Dict, Tuple
 
 import numpy as np
 
-# Coefficients a_k. Hann and Hamming are the classical pairs; Blackman-Harris
+from ..config.schema import WINDOWS
+
+# Coefficients a_k, one set per name in WINDOWS (the names a config accepts). Hann and Hamming are the classical pairs; Blackman-Harris
 # is the 4-term -92 dB set of Harris (1978); the flat top is the 5-term set
 # scipy.signal.windows.flattop uses.
 COEFFICIENTS: Dict[str, Tuple[float, ...]] = {
@@ -27,6 +29,7 @@ COEFFICIENTS: Dict[str, Tuple[float, ...]] = {
 # Half-width of the main lobe in bins: the peak search skips this many bins
 # above DC, where the window's own image of the mean would sit.
 MAIN_LOBE_BINS = {"rectangular": 1, "hann": 2, "hamming": 2, "blackman-harris": 4, "flattop": 5}
+assert set(COEFFICIENTS) == set(MAIN_LOBE_BINS) == set(WINDOWS), "a window name without its coefficients"
 
 _TABLE_POINTS = 2049
 

@@ -11,7 +11,9 @@ the configured pipeline, measured side by side in one run with
 
 The samples come from the simulator at the config's rate and channels
 (whatever the configured source), are encoded as int16 frames of the wire
-format before timing starts, and are decoded inside the timed run: the
+format before timing starts, and are decoded inside the timed run by the
+stream path every link kind uses (a reader thread, the frame decoder, the
+bounded block queue; `BytesSource` holds the bytes in place of a link): the
 pipeline measured is decode, ring, spectra, bands, peaks, speed, rules and
 payloads, delivered to a sink that encodes each payload and drops it.
 """
@@ -19,17 +21,16 @@ payloads, delivered to a sink that encodes each payload and drops it.
 import dataclasses
 import time
 import tracemalloc
-from typing import Dict, List, Optional, TextIO
+from typing import Any, Dict, List, Optional, TextIO
 
 import numpy as np
 
 from ..config import Config, SimulatorConfig
-from ..acquire.decoders import make_decoder
 from ..acquire.decoders.frame import encode_frame
 from ..deliver.base import Payload, Sink
 from ..deliver.payloads import encode
 from ..service.monitor import Monitor
-from ..acquire.sources.base import Block, Source
+from ..acquire.sources.memory import BytesSource
 from ..acquire.sources.simulator import SimulatorSource
 from ..analyse.windows import Window
 
@@ -53,31 +54,6 @@ class _EncodingSink(Sink):
 
     def close(self, offline: Payload) -> None:
         encode(offline)
-
-
-class _BytesSource(Source):
-    """Wire-format bytes held in memory, decoded as they are read."""
-
-    kind = "bench"
-
-    def __init__(self, config, chunks: List[bytes]) -> None:
-        super().__init__(config)
-        self._chunks = chunks
-        self._next = 0
-        self._decoder = make_decoder("frame", self.channels)
-
-    def _open(self) -> None:
-        pass
-
-    def _read(self, timeout: float) -> Optional[Block]:
-        while self._next < len(self._chunks):
-            decoded = self._decoder.feed(self._chunks[self._next])
-            self._next += 1
-            if decoded:
-                samples = np.concatenate([d.samples for d in decoded]) if len(decoded) > 1 else decoded[0].samples
-                return Block(samples, sum(d.lost for d in decoded), 32767.0)
-        self.ended = True
-        return None
 
 
 def _rate(config: Config) -> float:
@@ -116,18 +92,34 @@ def wire_chunks(samples: np.ndarray) -> List[bytes]:
     return [stream[i : i + CHUNK_BYTES] for i in range(0, len(stream), CHUNK_BYTES)]
 
 
-def _bench_config(config: Config) -> Config:
-    src = dataclasses.replace(config.source, sample_rate=_rate(config), realtime=False)
+def bench_config(config: Config) -> Config:
+    """The config with its source turned into the frame stream `wire_chunks` makes."""
+    src = dataclasses.replace(config.source, sample_rate=_rate(config), realtime=False, format="frame")
     return dataclasses.replace(config, source=src)
+
+
+def bench_monitor(config: Config, chunks: List[bytes], sink: Sink, **monitor_args: Any) -> Monitor:
+    """A monitor on `chunks` through the stream path of the link kinds:
+    reader thread, frame decoder, bounded queue. Its source is opened by
+    `run_monitor`."""
+    cfg = bench_config(config)
+    return Monitor(cfg, BytesSource(cfg.source, chunks), sink, **monitor_args)
+
+
+def run_monitor(monitor: Monitor) -> float:
+    """Wall seconds `monitor` takes to run its source to the end."""
+    monitor.source.open()
+    try:
+        start = time.perf_counter()
+        monitor.run()
+        return time.perf_counter() - start
+    finally:
+        monitor.source.close()
 
 
 def run_pipeline(config: Config, chunks: List[bytes]) -> float:
     """Wall seconds the monitor takes to decode and process `chunks`."""
-    cfg = _bench_config(config)
-    monitor = Monitor(cfg, _BytesSource(cfg.source, chunks), _EncodingSink())
-    start = time.perf_counter()
-    monitor.run()
-    return time.perf_counter() - start
+    return run_monitor(bench_monitor(config, chunks, _EncodingSink()))
 
 
 def run_bare_fft(config: Config, samples: np.ndarray) -> float:
@@ -163,11 +155,10 @@ def run_welch(config: Config, samples: np.ndarray) -> Optional[float]:
 
 def pipeline_memory(config: Config, samples: np.ndarray) -> int:
     """Peak bytes the pipeline allocates (tracemalloc) over `samples`."""
-    chunks = wire_chunks(samples)
-    cfg = _bench_config(config)
+    monitor = bench_monitor(config, wire_chunks(samples), _EncodingSink())
     tracemalloc.start()
     try:
-        Monitor(cfg, _BytesSource(cfg.source, chunks), _EncodingSink()).run()
+        run_monitor(monitor)
         return tracemalloc.get_traced_memory()[1]
     finally:
         tracemalloc.stop()

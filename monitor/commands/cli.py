@@ -1,8 +1,9 @@
-"""The `bandwatch` command line.
+"""The `bandwatch` command line, and what every subcommand shares.
 
-Exit codes: 0 done; 2 bad usage or bad config (nothing started); 1 failure at
-run time. Logs go to stderr, one line each, with level names; JSON output
-goes to stdout.
+Exit codes, here and nowhere else: 0 done; 2 bad usage or bad config
+(nothing started); 1 failure at run time. Logs go to stderr, one line each,
+with level names (set up here, the only place logging is configured); JSON
+output goes to stdout.
 """
 
 import argparse
@@ -11,16 +12,40 @@ import os
 import signal
 import sys
 import threading
-from typing import Dict, List, Optional, TextIO
+from typing import TYPE_CHECKING, Dict, List, Optional, TextIO
 
 from .. import __version__
-from ..config import Config, load, quantity_unit
+from ..analyse.units import quantity_unit
+from ..config import Config, load
 from ..errors import BandwatchError, ConfigError
 from ..service.posix_signals import stop_on_signals
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..acquire.sources.base import Source
 
 EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 
 log = logging.getLogger("bandwatch")
+
+
+def usage(command: str, message: str, err: TextIO) -> int:
+    """Say on `err` what was wrong with how `command` was called; its exit code."""
+    print(f"bandwatch: {command}: {message}", file=err)
+    return EXIT_USAGE
+
+
+def open_source_or_fail(config: Config) -> "Optional[Source]":
+    """The configured source, opened; or None once the reason is logged, and
+    the command exits with EXIT_FAILURE."""
+    from ..acquire.sources import open_source
+
+    try:
+        source = open_source(config.source)
+        source.open()
+    except BandwatchError as exc:
+        log.error("cannot open the source: %s", exc)
+        return None
+    return source
 
 # Commands promised by the interface whose work is not in this version yet.
 _NOT_YET: Dict[str, str] = {}
@@ -117,7 +142,6 @@ def _run(config: Config) -> int:
     from ..deliver import open_sink
     from ..service.notify import Notifier
     from ..service.monitor import Monitor
-    from ..acquire.sources import open_source
     from ..deliver.event_ids import EventIds
 
     monitor = None
@@ -129,11 +153,8 @@ def _run(config: Config) -> int:
             monitor.request_reload(lambda: load(config.path))
 
     signal.signal(signal.SIGHUP, on_hangup)
-    try:
-        source = open_source(config.source)
-        source.open()
-    except BandwatchError as exc:
-        log.error("cannot open the source: %s", exc)
+    source = open_source_or_fail(config)
+    if source is None:
         return EXIT_FAILURE
     ids = None
     try:
@@ -161,9 +182,8 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
     learning = [b for b in config.bands if b.baseline is not None]
     unknown = [n for n in names if n not in {b.name for b in learning}]
     if unknown:
-        print(f"bandwatch: reset-baseline: no band with a baseline named {', '.join(unknown)}; "
-              f"bands with one: {', '.join(b.name for b in learning) or 'none'}", file=sys.stderr)
-        return EXIT_USAGE
+        return usage("reset-baseline", f"no band with a baseline named {', '.join(unknown)}; "
+                     f"bands with one: {', '.join(b.name for b in learning) or 'none'}", sys.stderr)
     if config.mqtt is None:
         print("bandwatch: reset-baseline: without [mqtt] baselines are not stored (each run learns afresh)",
               file=sys.stderr)
@@ -179,6 +199,7 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
 def print_check(config: Config, out: TextIO) -> None:
     """The resolved config, as `bandwatch check` prints it."""
     from ..acquire.sources import available
+    from ..analyse.bearings import bearing_orders
     from ..analyse.windows import Window
 
     src = config.source
@@ -205,7 +226,7 @@ def print_check(config: Config, out: TextIO) -> None:
     else:
         w("speed: none given (order bands need [speed] rpm)\n")
     for bearing in config.bearings:
-        orders = bearing.orders()
+        orders = bearing_orders(bearing)
         w(f"bearing {bearing.name}: {bearing.elements} elements, d {bearing.element_diameter:g}, "
           f"D {bearing.pitch_diameter:g}, contact {bearing.contact_angle:g} deg; orders "
           + ", ".join(f"{k.upper()} {v:.4g}" for k, v in orders.items()) + "\n")

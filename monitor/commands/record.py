@@ -23,7 +23,6 @@ import json
 import logging
 import math
 import os
-import struct
 import sys
 import threading
 import time
@@ -32,15 +31,15 @@ from typing import Any, Dict, List, NamedTuple, Optional, TextIO
 import numpy as np
 
 from ..config import Config
+from ..deliver.payloads import utc_text
 from ..errors import BandwatchError
-from ..acquire.recording import META_ID, RecordingError, RecordingWriter
+from ..acquire.recording import RecordingError, RecordingWriter
 from ..service.posix_signals import stop_on_signals
-from ..acquire.sources import open_source
 from ..acquire.sources.base import Source
+from .cli import EXIT_FAILURE, EXIT_OK, open_source_or_fail, usage
 
 log = logging.getLogger("bandwatch.record")
 
-EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 READ_TIMEOUT_S = 0.2
 # Room for gap notes: this many per second of recording, at least
 # _MIN_NOTES, and never more than the reader accepts in a metadata chunk.
@@ -79,22 +78,10 @@ class _Notes:
         self._at = 0
         self._size = 0
 
-    def locate(self) -> None:
-        """Find the metadata chunk the writer made, and read its JSON back."""
-        with open(self.path, "rb") as fh:
-            at = 12
-            while True:
-                fh.seek(at)
-                head = fh.read(8)
-                if len(head) < 8:
-                    raise RecordingError(f"{self.path}: the metadata chunk was not written")
-                cid, size = struct.unpack("<4sI", head)
-                if cid == META_ID:
-                    body = fh.read(size)
-                    break
-                at += 8 + size + (size & 1)
-        self._at, self._size = at + 8, size
-        self._meta = json.loads(body.decode("utf-8"))
+    def locate(self, writer: RecordingWriter) -> None:
+        """Take the metadata chunk's place and fields from the writer that made it."""
+        self._at, self._size = writer.metadata_span
+        self._meta = dict(writer.metadata)
         self._meta.pop(_PAD_KEY, None)
 
     def fits(self, index: int, count: int) -> bool:
@@ -128,11 +115,6 @@ def _note_room(seconds: float) -> int:
     return min(notes * _NOTE_BYTES, _META_LIMIT)
 
 
-def _utc(epoch_s: float) -> str:
-    when = _dt.datetime.fromtimestamp(epoch_s, _dt.timezone.utc)
-    return when.strftime("%Y-%m-%dT%H:%M:%S.") + f"{when.microsecond // 1000:03d}Z"
-
-
 def record(
     config: Config,
     output: str,
@@ -160,7 +142,7 @@ def record(
     stored_at: Optional[int] = None
     try:
         writer.flush()
-        notes.locate()
+        notes.locate(writer)
         while not stop.is_set():
             if written >= target:
                 complete = True
@@ -175,7 +157,7 @@ def record(
                 # it sent one, else arrival less the block's duration.
                 first = (block.timestamp_us / 1e6 if block.timestamp_us is not None
                          else time.time() - block.samples.shape[0] / rate)
-                notes.set(start_time=_utc(first))
+                notes.set(start_time=utc_text(_dt.datetime.fromtimestamp(first, _dt.timezone.utc)))
                 dirty = True
             samples = block.samples[: target - written]
             if block.lost:
@@ -213,38 +195,30 @@ def _finish(writer: RecordingWriter, notes: _Notes, quiet: bool = False) -> None
         log.error("%s", exc)
 
 
-def _usage(message: str, err: TextIO) -> int:
-    print(f"bandwatch: record: {message}", file=err)
-    return EXIT_USAGE
-
-
 def record_command(config: Config, output: str, seconds: float, err: Optional[TextIO] = None) -> int:
     """`bandwatch record -c FILE -o REC --seconds S`; returns the exit code."""
     err = err or sys.stderr
     if not (math.isfinite(seconds) and seconds > 0):
-        return _usage(f"{seconds=} is not a positive number of seconds", err)
+        return usage("record", f"{seconds=} is not a positive number of seconds", err)
     rate = config.source.sample_rate
     if rate > 0 and not float(rate).is_integer():
-        return _usage(f"{config.path}: [source] sample_rate = {rate:g} is not a whole number of Hz; "
+        return usage("record", f"{config.path}: [source] sample_rate = {rate:g} is not a whole number of Hz; "
                       "a WAV recording stores an integer rate", err)
     if rate > 0 and int(round(seconds * rate)) < 1:
-        return _usage(f"{seconds=} is less than one sample at {rate:g} Hz", err)
+        return usage("record", f"{seconds=} is less than one sample at {rate:g} Hz", err)
     if os.path.lexists(output):
-        return _usage(f"{output} already exists; give a new file name (a recording is never overwritten)", err)
+        return usage("record", f"{output} already exists; give a new file name (a recording is never overwritten)", err)
     folder = os.path.dirname(os.path.abspath(output))
     if not os.path.isdir(folder):
-        return _usage(f"cannot write {output}: the folder {folder} does not exist", err)
+        return usage("record", f"cannot write {output}: the folder {folder} does not exist", err)
 
     with stop_on_signals(threading.Event(), "the recording") as stop:
         return _record(config, output, seconds, stop, err)
 
 
 def _record(config: Config, output: str, seconds: float, stop: threading.Event, err: TextIO) -> int:
-    try:
-        source = open_source(config.source)
-        source.open()
-    except BandwatchError as exc:
-        log.error("cannot open the source: %s", exc)
+    source = open_source_or_fail(config)
+    if source is None:
         return EXIT_FAILURE
     try:
         if not float(source.sample_rate).is_integer():

@@ -30,11 +30,9 @@ times and results match the live run's. A block of the recording holding
 NaN or infinity is dropped as the file source drops it (a gap, counted by
 the `corrupt` check), and the table says how many were.
 
-The trend history for the plot keeps one row of band values per result up
-to HISTORY_ROWS rows; beyond that, neighbouring rows are merged two into
-one, keeping the larger value of each (a limit crossing is never smoothed
-away), so memory stays bounded however long the recording is. The table's
-numbers are computed on every result and are exact whatever the length.
+What is kept and the table are in `replay_tally.py`: the trend history for
+the plot stays bounded however long the recording is, and the table's
+numbers are exact whatever the length.
 """
 
 import collections
@@ -45,12 +43,12 @@ import os
 import sys
 import threading
 import time
-from typing import Any, Callable, Dict, List, NamedTuple, Optional, TextIO, Tuple
+from typing import Any, Dict, List, Optional, TextIO, Tuple
 
 import numpy as np
 
-from ..analyse.bands import TO_SI
-from ..config import Config, quantity_unit
+from ..analyse.units import TO_SI, quantity_unit
+from ..config import Config, check_rate
 from ..deliver.base import Payload, Sink
 from ..errors import BandwatchError, ConfigError
 from ..deliver.payloads import encode
@@ -58,18 +56,16 @@ from ..service.monitor import Monitor, Result
 from ..acquire.recording import RecordingError, RecordingReader, open_recording
 from ..service.posix_signals import stop_on_signals
 from ..acquire.sources import open_source
-from ..acquire.sources.base import Block, Source
+from ..acquire.block import Block
+from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
+from .cli import EXIT_FAILURE, EXIT_OK, usage
+from .replay_tally import History, Replayed, Tally, Worst, score as score_of, write_table
 
 log = logging.getLogger("bandwatch.replay")
 
-EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
-HISTORY_ROWS = 100_000
 PROGRESS_INTERVAL_S = 0.1
 PLOT_HINT = "pip install 'bandwatch[plot]'"
-# Largest positive raw value of each integer WAV sample type, for the
-# clipping check (8-bit samples are shifted to signed by the reader).
-_FULL_SCALE = {"uint8": 127.0, "int16": 32767.0, "int24": 8388607.0, "int32": 2147483647.0}
 
 
 # ------------------------------------------------------------------ source
@@ -95,29 +91,24 @@ def _gap_notes(reader: RecordingReader) -> Dict[int, int]:
 
 class _ReplaySource(Source):
     """The recording as a source: the file source's blocks, cut so that no
-    block is longer than one hop (so each block gives at most one result),
-    with the noted gaps put back as `Block.lost` and integer full scale set.
-    `before_read` is called at every read: between two reads, the monitor
-    has taken exactly one block through every stage."""
+    block is longer than one hop (the blocks every replay has fed the
+    health checks with), with the noted gaps put back as `Block.lost`."""
 
     kind = "file"
 
-    def __init__(self, inner: Source, gaps: Dict[int, int], max_block: int,
-                 full_scale: Optional[float]) -> None:
+    def __init__(self, inner: Source, gaps: Dict[int, int], max_block: int) -> None:
         super().__init__(inner.config)
         self.inner = inner
         self.gaps = dict(gaps)
         self._gap_at = collections.deque(sorted(gaps))  # indices still ahead, first first
         self.max_block = max(1, max_block)
-        self.full_scale = full_scale
         self.position = 0  # samples of the file handed out or dropped
         self.dropped = 0  # of those, dropped for NaN or infinity
-        self.before_read: Callable[[], None] = lambda: None
-        self._pending: Optional[np.ndarray] = None
+        self.sample_rate = inner.sample_rate
+        self._pending: Optional[Block] = None
 
     def _open(self) -> None:
         self.inner.open()
-        self.sample_rate = self.inner.sample_rate
 
     def _close(self) -> None:
         self.inner.close()
@@ -126,24 +117,23 @@ class _ReplaySource(Source):
         return self.inner.counters()  # the file source's blocks, not these pieces of them
 
     def _read(self, timeout: float) -> Optional[Block]:
-        self.before_read()
         lost = 0
-        if self._pending is None or not len(self._pending):
-            block = self.inner.read(timeout)
-            if block is None:
+        if self._pending is None or not len(self._pending.samples):
+            self._pending = self.inner.read(timeout)
+            if self._pending is None:
                 self.ended = self.inner.ended
                 return None
-            self._pending = block.samples
-            if block.lost:
-                lost = self._dropped(block.lost)
-        n = min(len(self._pending), self.max_block)
+            if self._pending.lost:
+                lost = self._dropped(self._pending.lost)
+        pending = self._pending
+        n = min(len(pending.samples), self.max_block)
         if self._gap_at and self._gap_at[0] == self.position:
             lost += self.gaps.pop(self._gap_at.popleft())
         if self._gap_at and self._gap_at[0] < self.position + n:
             n = self._gap_at[0] - self.position  # a gap starts a block of its own
-        samples, self._pending = self._pending[:n], self._pending[n:]
+        self._pending = pending._replace(samples=pending.samples[n:])
         self.position += n
-        return Block(samples, lost, self.full_scale)
+        return pending._replace(samples=pending.samples[:n], lost=lost)
 
     def _dropped(self, count: int) -> int:
         """`count` file samples the file source dropped (a block holding NaN
@@ -193,132 +183,6 @@ class _EventSink(Sink):
                 pass
 
 
-# ----------------------------------------------------------- what is kept
-
-
-class Tally:
-    """Per band and channel, over every result: maximum and its stream time,
-    time at or above warning and alarm, events."""
-
-    def __init__(self, rows: List[Tuple[str, str, str, Optional[float], Optional[float]]], hop_s: float) -> None:
-        self.rows = rows  # (band, channel, unit, warning, alarm), in result order
-        self.hop_s = hop_s
-        n = len(rows)
-        self.warning = np.array([np.nan if r[3] is None else r[3] for r in rows], dtype=float)
-        self.alarm = np.array([np.nan if r[4] is None else r[4] for r in rows], dtype=float)
-        self.max = np.full(n, -np.inf)
-        self.max_at = np.full(n, np.nan)
-        self.above_warning = np.zeros(n)
-        self.above_alarm = np.zeros(n)
-        self.results = 0
-
-    def add(self, stream_s: float, values: np.ndarray) -> None:
-        self.results += 1
-        higher = np.isfinite(values) & (values > self.max)
-        self.max[higher] = values[higher]
-        self.max_at[higher] = stream_s
-        # A comparison with NaN (no limit) is False: nothing is added.
-        self.above_warning += self.hop_s * (values >= self.warning)
-        self.above_alarm += self.hop_s * (values >= self.alarm)
-
-
-class History:
-    """Band values per result for the trend plot, in bounded memory: arrays
-    grown by doubling up to `rows`, then merged two rows into one (the larger
-    value kept) each time they fill, and later results pooled alike."""
-
-    def __init__(self, columns: int, rows: int = HISTORY_ROWS) -> None:
-        self.limit = max(2, rows - rows % 2)
-        self.t = np.empty(min(1024, self.limit))
-        self.v = np.empty((len(self.t), columns))
-        self.n = 0
-        self.stride = 1  # results per row
-        self._pool_t = 0.0
-        self._pool_v = np.full(columns, np.nan)
-        self._pooled = 0
-
-    def add(self, stream_s: float, values: np.ndarray) -> None:
-        if self._pooled == 0:
-            self._pool_t = stream_s
-            self._pool_v[:] = values
-        else:
-            np.fmax(self._pool_v, values, out=self._pool_v)
-        self._pooled += 1
-        if self._pooled == self.stride:
-            self._append(self._pool_t, self._pool_v)
-            self._pooled = 0
-
-    def _append(self, t: float, v: np.ndarray) -> None:
-        if self.n == len(self.t):
-            size = min(2 * len(self.t), self.limit)
-            self.t = np.resize(self.t, size)
-            self.v = np.resize(self.v, (size, self.v.shape[1]))
-        self.t[self.n] = t
-        self.v[self.n] = v
-        self.n += 1
-        if self.n == self.limit:
-            # Full: every two rows become one, and each later row pools twice as many results.
-            half = self.n // 2
-            self.t[:half] = self.t[0 : self.n : 2]
-            np.fmax(self.v[0 : self.n : 2], self.v[1 : self.n : 2], out=self.v[:half])
-            self.n = half
-            self.stride *= 2
-
-    def arrays(self) -> Tuple[np.ndarray, np.ndarray]:
-        """Stream times and values, (rows,) and (rows, columns), the partly
-        pooled last row included."""
-        if self._pooled:
-            return np.append(self.t[: self.n], self._pool_t), np.vstack([self.v[: self.n], self._pool_v])
-        return self.t[: self.n].copy(), self.v[: self.n].copy()
-
-
-class Worst(NamedTuple):
-    """The result with the highest band value relative to its warning limit
-    (alarm where a band has only that), or the highest value when no band
-    has a limit."""
-
-    score: float
-    relative: bool
-    pair: int
-    result: Result
-
-
-def _score(values: np.ndarray, reference: np.ndarray) -> Tuple[float, int]:
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ratios = np.where(np.isfinite(reference), values / reference, np.nan)
-    if np.isfinite(ratios).any():
-        i = int(np.nanargmax(ratios))
-        return float(ratios[i]), i
-    if np.isfinite(values).any():
-        i = int(np.nanargmax(values))
-        return float(values[i]), i
-    return -math.inf, 0
-
-
-@dataclasses.dataclass
-class Replayed:
-    """What a replay measured, for the table and the plot."""
-
-    recording: str
-    config: Config
-    sample_rate: float
-    frames: int  # in the file
-    played: int  # file samples taken through the pipeline
-    lost: int  # samples put back from the gap notes
-    gaps: int
-    dropped: int  # file samples dropped in blocks holding NaN or infinity
-    dropped_blocks: int
-    tally: Tally
-    events: Dict[Tuple[str, str, Optional[str]], int]
-    history: Optional[History]
-    worst: Optional[Worst]
-    stopped: bool
-
-    @property
-    def seconds(self) -> float:
-        return self.frames / self.sample_rate
-
-
 # -------------------------------------------------------------- the run
 
 
@@ -336,7 +200,7 @@ def replay_config(config: Config, reader: RecordingReader) -> Config:
                           f"is {src.sample_rate:g} Hz, but the recording {reader.path} was made at "
                           f"{reader.sample_rate} Hz; set it to {reader.sample_rate} (or use kind = \"file\")")
     if src.sample_rate <= 0:
-        _check_nyquist(config, rate / 2.0)
+        check_rate(config, rate)
     ours = "bandwatch_version" in reader.metadata
     scale = src.scale
     if ours:
@@ -349,22 +213,6 @@ def replay_config(config: Config, reader: RecordingReader) -> Config:
                                  scale=scale, simulator=None)
     # A replay writes no captures: the recording already holds every sample.
     return dataclasses.replace(config, source=source, capture=None)
-
-
-def _check_nyquist(config: Config, nyquist: float) -> None:
-    """Band edges, checked at load time only when the rate was known."""
-    sp = config.speed
-    top_hz = sp.search_hz[1] if sp.track and sp.search_hz else sp.nominal_hz
-    for i, band in enumerate(config.bands, start=1):
-        key = "hz" if band.hz is not None else "orders"
-        hi = band.hz[1] if band.hz is not None else (band.orders[1] * top_hz if band.orders and top_hz else 0.0)
-        if hi > nyquist:
-            raise ConfigError(config.path, f"band[{i}].{key}",
-                              f"reaches {hi:g} Hz, above the recording's Nyquist frequency {nyquist:g} Hz")
-    if config.envelope is not None and config.envelope.band_hz[1] > nyquist:
-        raise ConfigError(config.path, "envelope.band_hz",
-                          f"reaches {config.envelope.band_hz[1]:g} Hz, above the recording's "
-                          f"Nyquist frequency {nyquist:g} Hz")
 
 
 def replay(
@@ -383,9 +231,8 @@ def replay(
         cfg = replay_config(config, reader)
         gaps = _gap_notes(reader)
         frames = reader.frames
-        full_scale = _FULL_SCALE.get(reader.sample_type)
     spec = cfg.spectrum
-    source = _ReplaySource(open_source(cfg.source), gaps, spec.hop, full_scale)
+    source = _ReplaySource(open_source(cfg.source), gaps, spec.hop)
     source.open()
     try:
         fs = source.sample_rate
@@ -394,37 +241,32 @@ def replay(
         # on the wall clock while a file is read.
         monitor = Monitor(cfg, source, sink, ids=EventIds(),
                           clock=lambda: (source.samples + source.lost) / fs)
-        rows = [(b.name, cfg.source.channels[ch], quantity_unit(b.quantity, cfg.source.unit), b.warning, b.alarm)
-                for b, ch in monitor.bank.pairs]
+        rows = [(b.band.name, b.channel, b.unit, b.band.warning, b.band.alarm) for b in monitor.band_states()]
         tally = Tally(rows, spec.hop / fs)
         history = History(len(rows)) if keep_history else None
         reference = np.where(np.isfinite(tally.warning), tally.warning, tally.alarm)
-        state = {"seen": 0, "worst": None}
+        worst: List[Optional[Worst]] = [None]
 
-        def observe() -> None:
-            if monitor.results != state["seen"]:
-                state["seen"] = monitor.results
-                result = monitor.latest
-                values = np.array([b.value for b in result.bands], dtype=float)
-                tally.add(result.stream_s, values)
-                if history is not None:
-                    history.add(result.stream_s, values)
-                    score, pair = _score(values, reference)
-                    if state["worst"] is None or score > state["worst"].score:
-                        state["worst"] = Worst(score, bool(np.isfinite(reference).any()), pair, result)
+        def observe(result: Result) -> None:
+            values = np.array([b.value for b in result.bands], dtype=float)
+            tally.add(result.stream_s, values)
+            if history is not None:
+                history.add(result.stream_s, values)
+                rank, pair = score_of(values, reference)
+                if worst[0] is None or rank > worst[0].score:
+                    worst[0] = Worst(rank, bool(np.isfinite(reference).any()), pair, result)
             if progress is not None:
                 progress.update(source.position / fs)
 
-        source.before_read = observe
+        monitor.add_observer(observe)
         monitor.run(stop)
-        observe()
     finally:
         source.close()
     if progress is not None:
         progress.clear()
     return Replayed(recording, cfg, fs, frames, source.position - source.dropped, source.lost - source.dropped,
                     len(gaps) - len(source.gaps), source.dropped, source.inner.rejected,
-                    tally, sink.counts, history, state["worst"], source.position < frames)
+                    tally, sink.counts, history, worst[0], source.position < frames)
 
 
 # -------------------------------------------------------------- progress
@@ -464,50 +306,6 @@ class Progress:
             self.stream.write(" " * self._shown + "\r")
             self.stream.flush()
             self._shown = 0
-
-
-# ----------------------------------------------------------------- table
-
-
-def _cell(value: Optional[float], fmt: str) -> str:
-    return "-" if value is None or not math.isfinite(value) else format(value, fmt)
-
-
-def write_table(rep: Replayed, err: TextIO) -> None:
-    """The per band and channel table, and the health events counted."""
-    t = rep.tally
-    fs = rep.sample_rate
-    head = (f"replay of {rep.recording}: {rep.seconds:.6g} s at {fs:g} Hz, "
-            f"{len(rep.config.source.channels)} channel(s), {t.results} results, one every {t.hop_s:.6g} s")
-    if rep.gaps:
-        head += f"; {rep.lost} lost samples put back in {rep.gaps} gap(s)"
-    err.write(head + "\n")
-    if rep.dropped_blocks:
-        err.write(f"{rep.dropped_blocks} block(s) holding NaN or infinity dropped ({rep.dropped} samples), "
-                  "each a gap, counted by the corrupt check\n")
-    if rep.stopped:
-        err.write(f"stopped after {(rep.played + rep.dropped) / fs:.6g} of {rep.seconds:.6g} s\n")
-    if t.results == 0:
-        span = rep.config.spectrum.span / fs
-        err.write(f"no result: one needs {span:.6g} s of samples without a gap\n")
-    table = [("band", "channel", "unit", "warning", "alarm", "max", "max at s",
-              "above warning s", "above alarm s", "events")]
-    for i, (name, channel, unit, warning, alarm) in enumerate(t.rows):
-        table.append((
-            name, channel, unit, _cell(warning, "g"), _cell(alarm, "g"),
-            _cell(t.max[i], ".6g"), _cell(t.max_at[i], ".3f"),
-            _cell(t.above_warning[i] if warning is not None else None, ".3f"),
-            _cell(t.above_alarm[i] if alarm is not None else None, ".3f"),
-            str(rep.events.get(("band", name, channel), 0)),
-        ))
-    widths = [max(len(row[k]) for row in table) for k in range(len(table[0]))]
-    for row in table:
-        err.write("  ".join(cell.ljust(widths[k]) for k, cell in enumerate(row)).rstrip() + "\n")
-    health = sorted((k, n) for k, n in rep.events.items() if k[0] == "health")
-    total = sum(n for _, n in health)
-    detail = ", ".join(f"{name}{'/' + channel if channel else ''} {n}" for (_, name, channel), n in health)
-    err.write(f"health events: {total}" + (f" ({detail})" if detail else "") + "\n")
-    err.flush()
 
 
 # ------------------------------------------------------------------ plot
@@ -608,11 +406,6 @@ def _draw_spectrum(ax: Any, rep: Replayed) -> None:
 # --------------------------------------------------------------- command
 
 
-def _usage(message: str, err: TextIO) -> int:
-    print(f"bandwatch: replay: {message}", file=err)
-    return EXIT_USAGE
-
-
 def replay_command(config: Config, recording: str, plot: Optional[str] = None,
                    out: Optional[TextIO] = None, err: Optional[TextIO] = None) -> int:
     """`bandwatch replay -c FILE REC [--plot PNG]`; returns the exit code."""
@@ -620,10 +413,10 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
     err = err or sys.stderr
     if plot is not None:
         if not plot_available():
-            return _usage(f"--plot needs matplotlib, which is not installed: {PLOT_HINT}", err)
+            return usage("replay", f"--plot needs matplotlib, which is not installed: {PLOT_HINT}", err)
         folder = os.path.dirname(os.path.abspath(plot))
         if not os.path.isdir(folder):
-            return _usage(f"cannot write {plot}: the folder {folder} does not exist", err)
+            return usage("replay", f"cannot write {plot}: the folder {folder} does not exist", err)
     progress = None
     if err.isatty():
         try:
@@ -637,7 +430,7 @@ def replay_command(config: Config, recording: str, plot: Optional[str] = None,
         except (ConfigError, RecordingError) as exc:
             if progress is not None:
                 progress.clear()
-            return _usage(str(exc), err)
+            return usage("replay", str(exc), err)
         except BandwatchError as exc:
             if progress is not None:
                 progress.clear()

@@ -1,11 +1,16 @@
 """The configuration: a TOML file read into frozen dataclasses.
 
-`load(path)` and `parse(text)` live in `load.py`; the names below are the
-public surface other modules import from `monitor.config`.
+`schema.py` says what a config is, `load.py` (with `table.py` and
+`band_tables.py`) reads and checks one, `rates.py` holds the rules that need
+the sample rate. The names below are the public surface other modules
+import from `monitor.config`.
 """
 
+from ..analyse.units import quantity_unit
 from ..errors import ConfigError
-from .load import (
+from .load import load, parse
+from .rates import check_rate
+from .schema import (
     FORMATS,
     MAX_CHANNELS,
     MAX_SAMPLE_RATE,
@@ -26,9 +31,6 @@ from .load import (
     SourceConfig,
     SpectrumConfig,
     SpeedConfig,
-    load,
-    parse,
-    quantity_unit,
 )
 
 __all__ = [
@@ -36,5 +38,5 @@ __all__ = [
     "SOURCE_KINDS", "UNITS", "WINDOWS",
     "BandConfig", "BearingConfig", "CaptureConfig", "Config", "ConfigError", "EnvelopeConfig",
     "HealthConfig", "MqttConfig", "SimulatorConfig", "SourceConfig", "SpectrumConfig", "SpeedConfig",
-    "load", "parse", "quantity_unit",
+    "check_rate", "load", "parse", "quantity_unit",
 ]

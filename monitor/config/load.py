@@ -1,7 +1,7 @@
 """Load a bandwatch TOML config and check every rule before anything starts.
 
 The file is parsed with tomllib (tomli before Python 3.11). Each section is
-read by a `_Table` that knows its key path, so an error can name the file, the
+read by a `Table` that knows its key path, so an error can name the file, the
 key (``band[2].hz``), the bad value, what was expected and, where the key can
 be found in the text, its line. Keys nobody asked for are errors: a typo must
 not silently fall back to a default.
@@ -10,35 +10,40 @@ not silently fall back to a default.
 import math
 import re
 import sys
-from dataclasses import dataclass
-from typing import Any, Dict, List, Optional, Sequence, Tuple
+from typing import Any, Dict, List, Optional, Tuple
 
-from ..analyse.bearings import DEFECTS, defect_orders
+from ..analyse.bearings import DEFECTS, bearing_orders
+from ..analyse.units import iso_velocity_hz
 from ..errors import ConfigError
+from .rates import order_edge_problem
+from .schema import (
+    FORMATS,
+    MAX_CHANNELS,
+    MAX_SAMPLE_RATE,
+    NAME_RE,
+    QUANTITIES,
+    SEVERITY_ZONES,
+    SOURCE_KINDS,
+    UNITS,
+    WINDOWS,
+    BandConfig,
+    BearingConfig,
+    CaptureConfig,
+    Config,
+    EnvelopeConfig,
+    HealthConfig,
+    MqttConfig,
+    SimulatorConfig,
+    SourceConfig,
+    SpectrumConfig,
+    SpeedConfig,
+)
+from .table import Locator, Table, type_name
 
 if sys.version_info >= (3, 11):
     import tomllib
 else:  # pragma: no cover - exercised on old Pythons only
     import tomli as tomllib
-
-NAME_RE = re.compile(r"^[A-Za-z0-9_-]{1,64}\Z")  # \Z: "$" would pass a final newline
-SOURCE_KINDS = ("serial", "tcp-client", "tcp-server", "udp", "file", "simulator")
-FORMATS = ("frame", "csv")
-UNITS = ("g", "m/s2")
-WINDOWS = ("hann", "hamming", "blackman-harris", "flattop", "rectangular")
-QUANTITIES = ("acceleration", "velocity", "displacement")
-QUANTITY_UNITS = {"velocity": "mm/s", "displacement": "um"}
-MAX_CHANNELS = 16
-# ISO 10816-3:2009 Annex A (carried into ISO 20816-3:2022) zone boundaries of
-# broadband RMS velocity, mm/s: warning at B/C, alarm at C/D. Written from
-# memory of the standard (the shared check values say so too).
-SEVERITY_ZONES = {
-    "group1-rigid": (4.5, 7.1),
-    "group1-flexible": (7.1, 11.0),
-    "group2-rigid": (2.8, 4.5),
-    "group2-flexible": (4.5, 7.1),
-}
-MAX_SAMPLE_RATE = 1_000_000.0
 
 # Which [source] keys each kind takes, beyond kind, sample_rate, channels, unit.
 _KIND_KEYS = {
@@ -59,407 +64,17 @@ _KIND_KEYS = {
 }
 
 
-@dataclass(frozen=True)
-class SimulatorConfig:
-    """The invented machine the simulator source plays (see config/demo.toml)."""
-
-    rpm: float
-    harmonics: Tuple[float, ...]  # peak acceleration at 1x, 2x, ... in the unit
-    growth: float  # rise of the 1x peak per minute of stream time, in the unit
-    noise: float  # RMS of broadband noise, in the unit
-    seed: int
-    seconds: float  # stream seconds before the simulated run ends; 0 = never
-
-
-@dataclass(frozen=True)
-class SourceConfig:
-    kind: str
-    sample_rate: float
-    channels: Tuple[str, ...]
-    unit: str
-    scale: Tuple[float, ...]  # one per channel
-    format: str = "frame"
-    device: str = ""
-    baud: int = 115200
-    host: str = "127.0.0.1"
-    port: int = 0
-    path: str = ""
-    realtime: bool = False
-    simulator: Optional[SimulatorConfig] = None
-
-    @property
-    def nyquist(self) -> float:
-        return self.sample_rate / 2.0
-
-
-@dataclass(frozen=True)
-class SpectrumConfig:
-    size: int = 4096
-    overlap: float = 0.5
-    window: str = "hann"
-    averages: int = 4
-
-    @property
-    def hop(self) -> int:
-        """Samples between results: size * (1 - overlap), rounded to a sample."""
-        return self.size - int(round(self.size * self.overlap))
-
-    @property
-    def span(self) -> int:
-        """Samples one result covers: `averages` frames, `hop` apart."""
-        return self.size + (self.averages - 1) * self.hop
-
-
-@dataclass(frozen=True)
-class SpeedConfig:
-    rpm: Optional[float] = None
-    track: bool = False
-    search_hz: Optional[Tuple[float, float]] = None
-
-    @property
-    def nominal_hz(self) -> Optional[float]:
-        return None if self.rpm is None else self.rpm / 60.0
-
-
-@dataclass(frozen=True)
-class BandConfig:
-    name: str
-    channels: Tuple[str, ...]
-    quantity: str
-    hz: Optional[Tuple[float, float]] = None
-    orders: Optional[Tuple[float, float]] = None
-    warning: Optional[float] = None
-    alarm: Optional[float] = None
-    hysteresis: float = 0.1
-    delay: float = 3.0
-    spectrum: str = "raw"  # or "envelope"
-    # Set when the edges come from a bearing's defect frequency (then
-    # `orders` holds the resolved edges).
-    bearing: Optional[str] = None
-    defect: Optional[str] = None
-    harmonic: int = 1
-    # Limits relative to a learned typical value: `baseline` seconds of
-    # learning, then warning/alarm at these multiples of it.
-    baseline: Optional[float] = None
-    warning_ratio: Optional[float] = None
-    alarm_ratio: Optional[float] = None
-    severity: Optional[str] = None  # an ISO 10816-3 preset, see SEVERITY_ZONES
-
-    def edges_hz(self, speed_hz: Optional[float]) -> Tuple[float, float]:
-        """Band edges in Hz, following the running speed for order bands."""
-        if self.hz is not None:
-            return self.hz
-        assert self.orders is not None and speed_hz is not None
-        return (self.orders[0] * speed_hz, self.orders[1] * speed_hz)
-
-
-@dataclass(frozen=True)
-class BearingConfig:
-    name: str
-    elements: int
-    element_diameter: float
-    pitch_diameter: float
-    contact_angle: float = 0.0  # degrees
-
-    def orders(self) -> Dict[str, float]:
-        return defect_orders(self.elements, self.element_diameter, self.pitch_diameter, self.contact_angle)
-
-
-@dataclass(frozen=True)
-class EnvelopeConfig:
-    band_hz: Tuple[float, float]
-
-
-@dataclass(frozen=True)
-class HealthConfig:
-    stale: float = 2.0  # s without samples
-    window: float = 10.0  # s of stream over which counts are taken
-    corrupt: float = 0.01  # share of frames rejected
-    clipping: float = 0.001  # share of samples at full scale
-    flatline: float = 5.0  # s without any change on a channel
-    rate: float = 0.01  # relative disagreement of timestamps with sample_rate
-    nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
-    hysteresis: float = 0.2  # a fault clears below limit * (1 - hysteresis)
-    hold: float = 10.0  # s below that before a fault clears
-    blind: Optional[float] = None  # s of samples without a result; None: from [spectrum]
-
-
-@dataclass(frozen=True)
-class MqttConfig:
-    host: str = "localhost"
-    port: int = 1883
-    prefix: str = "bandwatch"
-    qos: int = 1
-    summary_interval: float = 10.0
-    keepalive: int = 30
-    username: str = ""
-    password_file: str = ""
-    tls: bool = False
-    ca_file: str = ""
-    cert_file: str = ""  # client certificate (PEM), for brokers that ask for one
-    key_file: str = ""
-    queue_dir: str = "/var/lib/bandwatch"
-    queue_limit: int = 10000
-
-
-@dataclass(frozen=True)
-class CaptureConfig:
-    """Raw samples around an alarm, written as recordings."""
-
-    seconds: float = 10.0  # kept before the trigger
-    after: float = 5.0  # written after it
-    keep: int = 20  # newest files kept; older ones are deleted
-    dir: str = "/var/lib/bandwatch/captures"
-
-
-@dataclass(frozen=True)
-class Config:
-    path: str
-    node: str
-    source: SourceConfig
-    spectrum: SpectrumConfig
-    speed: SpeedConfig
-    bands: Tuple[BandConfig, ...]
-    health: HealthConfig
-    mqtt: Optional[MqttConfig]
-    envelope: Optional[EnvelopeConfig] = None
-    bearings: Tuple[BearingConfig, ...] = ()
-    capture: Optional[CaptureConfig] = None
-    # Used when there is no [mqtt] section: stdout still gets summaries.
-    summary_interval: float = 10.0
-    prefix: str = "bandwatch"
-
-
-def quantity_unit(quantity: str, source_unit: str) -> str:
-    """The unit a band of this quantity is reported in."""
-    return QUANTITY_UNITS.get(quantity, source_unit)
-
-
-# ---------------------------------------------------------------------------
-# Reading tables with key paths and line numbers
-
-
-def _show(value: Any) -> str:
-    if isinstance(value, str):
-        return repr(value)
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, list):
-        return "[" + ", ".join(_show(v) for v in value) + "]"
-    return repr(value)
-
-
-def _type_name(value: Any) -> str:
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a number"
-    if isinstance(value, str):
-        return "a string"
-    if isinstance(value, list):
-        return "an array"
-    if isinstance(value, dict):
-        return "a table"
-    return type(value).__name__
-
-
-class _Locator:
-    """Find the line of a key path in the TOML text, for error messages.
-
-    A best effort over the common layout (one key per line under [table] or
-    [[array]] headers). When the key cannot be found, errors simply omit the
-    line.
-    """
-
-    _header = re.compile(r"^\s*(\[\[?)\s*([A-Za-z0-9_.-]+)\s*\]\]?")
-    _key = re.compile(r"^\s*([A-Za-z0-9_-]+)\s*=")
-
-    def __init__(self, text: str) -> None:
-        self.lines: Dict[Tuple[str, Optional[int], Optional[str]], int] = {}
-        table, index = "", None
-        counts: Dict[str, int] = {}
-        for number, line in enumerate(text.splitlines(), start=1):
-            m = self._header.match(line)
-            if m:
-                table = m.group(2)
-                if m.group(1) == "[[":
-                    counts[table] = counts.get(table, 0) + 1
-                    index = counts[table]
-                else:
-                    index = None
-                self.lines.setdefault((table, index, None), number)
-                continue
-            m = self._key.match(line)
-            if m:
-                self.lines.setdefault((table, index, m.group(1)), number)
-
-    def find(self, table: str, index: Optional[int], key: Optional[str]) -> Optional[int]:
-        found = self.lines.get((table, index, key))
-        if found is None and key is not None:
-            found = self.lines.get((table, index, None))
-        return found
-
-
-class _Table:
-    """One TOML table being read: hands out keys, remembers which were used."""
-
-    def __init__(
-        self,
-        data: Dict[str, Any],
-        file: str,
-        locator: _Locator,
-        table: str,
-        index: Optional[int] = None,
-    ) -> None:
-        self.data = data
-        self.file = file
-        self.locator = locator
-        self.table = table
-        self.index = index
-        self.used: set = set()
-        self.asked: set = set()  # every key a reader looked for, present or not
-
-    def path(self, key: Optional[str]) -> str:
-        base = self.table if self.index is None else f"{self.table}[{self.index}]"
-        return base if key is None else f"{base}.{key}"
-
-    def fail(self, key: Optional[str], problem: str) -> ConfigError:
-        line = self.locator.find(self.table, self.index, key)
-        return ConfigError(self.file, self.path(key), problem, line)
-
-    def bad(self, key: str, value: Any, expected: str) -> ConfigError:
-        return self.fail(key, f"expected {expected}, got {_show(value)}")
-
-    def has(self, key: str) -> bool:
-        self.asked.add(key)
-        return key in self.data
-
-    def raw(self, key: str) -> Any:
-        self.asked.add(key)
-        self.used.add(key)
-        return self.data[key]
-
-    def get_str(self, key: str, default: Optional[str] = None, choices: Sequence[str] = ()) -> str:
-        if not self.has(key):
-            if default is None:
-                raise self.fail(key, "missing; this key is required")
-            return default
-        value = self.raw(key)
-        if not isinstance(value, str):
-            raise self.bad(key, value, "a string")
-        if choices and value not in choices:
-            raise self.bad(key, value, "one of " + ", ".join(repr(c) for c in choices))
-        return value
-
-    def get_name(self, key: str, default: Optional[str] = None) -> str:
-        value = self.get_str(key, default)
-        if not NAME_RE.match(value):
-            raise self.bad(key, value, "1 to 64 characters of A-Z a-z 0-9 _ -")
-        return value
-
-    def get_bool(self, key: str, default: bool) -> bool:
-        if not self.has(key):
-            return default
-        value = self.raw(key)
-        if not isinstance(value, bool):
-            raise self.bad(key, value, "true or false")
-        return value
-
-    def get_int(self, key: str, default: Optional[int], lo: int, hi: int) -> int:
-        if not self.has(key):
-            if default is None:
-                raise self.fail(key, "missing; this key is required")
-            return default
-        value = self.raw(key)
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise self.bad(key, value, f"an integer from {lo} to {hi}")
-        if not lo <= value <= hi:
-            raise self.bad(key, value, f"an integer from {lo} to {hi}")
-        return value
-
-    def _number(self, key: str, value: Any, expected: str) -> float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise self.bad(key, value, expected)
-        number = float(value)
-        if not math.isfinite(number):
-            raise self.bad(key, value, expected)
-        return number
-
-    def get_float(
-        self,
-        key: str,
-        default: Optional[float],
-        lo: float = -math.inf,
-        hi: float = math.inf,
-        lo_open: bool = False,
-        expected: str = "",
-    ) -> float:
-        if not self.has(key):
-            if default is None:
-                raise self.fail(key, "missing; this key is required")
-            return default
-        value = self.raw(key)
-        if not expected:
-            low = f"> {lo:g}" if lo_open else f">= {lo:g}"
-            expected = f"a number {low}" + ("" if hi == math.inf else f" and <= {hi:g}")
-        number = self._number(key, value, expected)
-        if number < lo or (lo_open and number == lo) or number > hi:
-            raise self.bad(key, value, expected)
-        return number
-
-    def get_optional_float(self, key: str, lo_open_at: float = 0.0) -> Optional[float]:
-        if not self.has(key):
-            return None
-        return self.get_float(key, None, lo=lo_open_at, lo_open=True)
-
-    def get_pair(self, key: str, lo: float, hi: float, what: str) -> Tuple[float, float]:
-        value = self.raw(key)
-        expected = f"[low, high] with {what}"
-        if not isinstance(value, list) or len(value) != 2:
-            raise self.bad(key, value, expected)
-        a = self._number(key, value[0], expected)
-        b = self._number(key, value[1], expected)
-        if not (lo <= a < b <= hi):
-            raise self.bad(key, value, expected)
-        return (a, b)
-
-    def get_list(self, key: str) -> List[Any]:
-        value = self.raw(key)
-        if not isinstance(value, list):
-            raise self.bad(key, value, "an array")
-        return value
-
-    def table_of(self, key: str) -> Optional[Dict[str, Any]]:
-        if not self.has(key):
-            return None
-        value = self.raw(key)
-        if not isinstance(value, dict):
-            raise self.bad(key, value, "a table [" + key + "]")
-        return value
-
-    def finish(self) -> None:
-        """Refuse every key that was not read, naming the keys this table takes."""
-        for key in self.data:
-            if key not in self.used:
-                known = ", ".join(sorted(self.asked))
-                raise self.fail(key, f"unknown key; expected one of {known}")
-
-
 # ---------------------------------------------------------------------------
 # Sections
 
 
-def _read_node(t: _Table) -> str:
+def _read_node(t: Table) -> str:
     name = t.get_name("name")
     t.finish()
     return name
 
 
-def _read_simulator(t: _Table, speed_rpm: Optional[float]) -> SimulatorConfig:
+def _read_simulator(t: Table, speed_rpm: Optional[float]) -> SimulatorConfig:
     rpm = t.get_float("sim_rpm", speed_rpm if speed_rpm is not None else 1480.0, lo=0.0, lo_open=True)
     harmonics: Tuple[float, ...] = (0.02, 0.008, 0.004)
     if t.has("sim_harmonics"):
@@ -467,7 +82,7 @@ def _read_simulator(t: _Table, speed_rpm: Optional[float]) -> SimulatorConfig:
         expected = "an array of 1 to 32 numbers >= 0 (peak at 1x, 2x, ...)"
         if not 1 <= len(values) <= 32:
             raise t.bad("sim_harmonics", values, expected)
-        harmonics = tuple(t._number("sim_harmonics", v, expected) for v in values)
+        harmonics = tuple(t.number("sim_harmonics", v, expected) for v in values)
         if min(harmonics) < 0:
             raise t.bad("sim_harmonics", values, expected)
     return SimulatorConfig(
@@ -480,7 +95,7 @@ def _read_simulator(t: _Table, speed_rpm: Optional[float]) -> SimulatorConfig:
     )
 
 
-def _read_source(t: _Table, speed_rpm: Optional[float]) -> SourceConfig:
+def _read_source(t: Table, speed_rpm: Optional[float]) -> SourceConfig:
     kind = t.get_str("kind", None, SOURCE_KINDS)
     allowed = _KIND_KEYS[kind] | {"kind", "sample_rate", "channels", "unit"}
     for key in t.data:
@@ -510,9 +125,9 @@ def _read_source(t: _Table, speed_rpm: Optional[float]) -> SourceConfig:
         if isinstance(value, list):
             if len(value) != len(channels):
                 raise t.bad("scale", value, expected)
-            scale = tuple(t._number("scale", v, expected) for v in value)
+            scale = tuple(t.number("scale", v, expected) for v in value)
         else:
-            scale = (t._number("scale", value, expected),) * len(channels)
+            scale = (t.number("scale", value, expected),) * len(channels)
         if any(s == 0 for s in scale):
             raise t.bad("scale", value, expected)
 
@@ -544,7 +159,7 @@ def _read_source(t: _Table, speed_rpm: Optional[float]) -> SourceConfig:
     return SourceConfig(**out)
 
 
-def _read_spectrum(t: _Table) -> SpectrumConfig:
+def _read_spectrum(t: Table) -> SpectrumConfig:
     size = t.get_int("size", 4096, 256, 65536)
     if size & (size - 1):
         raise t.bad("size", size, "a power of two from 256 to 65536")
@@ -558,7 +173,7 @@ def _read_spectrum(t: _Table) -> SpectrumConfig:
     return spec
 
 
-def _read_speed(t: _Table, nyquist: float) -> SpeedConfig:
+def _read_speed(t: Table, nyquist: float) -> SpeedConfig:
     rpm = t.get_optional_float("rpm")
     track = t.get_bool("track", False)
     search = None
@@ -577,7 +192,7 @@ def _read_speed(t: _Table, nyquist: float) -> SpeedConfig:
     return SpeedConfig(rpm=rpm, track=track, search_hz=search)
 
 
-def _read_bearing(t: _Table) -> BearingConfig:
+def _read_bearing(t: Table) -> BearingConfig:
     bearing = BearingConfig(
         name=t.get_name("name"),
         elements=t.get_int("elements", None, 1, 200),
@@ -592,15 +207,12 @@ def _read_bearing(t: _Table) -> BearingConfig:
     return bearing
 
 
-def _order_limit(t: _Table, key: str, value: Any, orders: Tuple[float, float], source: SourceConfig,
+def _order_limit(t: Table, key: str, value: Any, orders: Tuple[float, float], source: SourceConfig,
                  speed: SpeedConfig) -> None:
     """Refuse order edges whose top, at the highest speed possible, passes Nyquist."""
-    assert speed.rpm is not None
-    top_hz = speed.search_hz[1] if speed.track and speed.search_hz else speed.rpm / 60.0
-    nyquist = source.nyquist
-    if nyquist > 0 and orders[1] * top_hz > nyquist:
-        raise t.bad(key, value, f"a high edge at most {nyquist / top_hz:g} orders: "
-                    f"{orders[1]:g} x {top_hz:g} Hz is above the Nyquist frequency {nyquist:g} Hz")
+    problem = order_edge_problem(orders[1], speed, source.nyquist)
+    if problem is not None:
+        raise t.bad(key, value, problem)
 
 
 # Limit keys of the first release. Refused rather than read as aliases, so a
@@ -609,7 +221,7 @@ RENAMED_BAND_KEYS = {"alert": "warning", "danger": "alarm",
                      "alert_ratio": "warning_ratio", "danger_ratio": "alarm_ratio"}
 
 
-def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
+def _read_band(t: Table, source: SourceConfig, speed: SpeedConfig,
                bearings: Dict[str, BearingConfig]) -> BandConfig:
     for old, new in RENAMED_BAND_KEYS.items():
         if t.has(old):
@@ -642,9 +254,8 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
             if t.has(key):
                 raise t.fail(key, f"severity = {severity!r} sets the edges, quantity and limits; "
                                   f"leave {key} out, or drop severity and give them all")
-        # ISO 10816-3: 10-1000 Hz above 600 r/min, 2-1000 Hz for 120-600 r/min.
-        low = 2.0 if speed.rpm is not None and speed.rpm <= 600 else 10.0
-        hz = (low, min(1000.0, nyquist) if nyquist > 0 else 1000.0)
+        low, high = iso_velocity_hz(speed.rpm)
+        hz = (low, min(high, nyquist) if nyquist > 0 else high)
     given = [k for k in ("hz", "orders", "bearing") if t.has(k)]
     if len(given) > 1:
         raise t.fail(given[1], "give one of hz, orders or bearing, not " + " and ".join(given))
@@ -660,7 +271,7 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
         width = t.get_float("width", 0.05, lo=0.0, lo_open=True, hi=0.5)
         if speed.rpm is None:
             raise t.fail("bearing", "needs [speed] rpm to turn defect orders into Hz")
-        centre = bearings[bearing].orders()[defect] * harmonic
+        centre = bearing_orders(bearings[bearing])[defect] * harmonic
         orders = (centre * (1.0 - width), centre * (1.0 + width))
         _order_limit(t, "harmonic" if t.has("harmonic") else "defect", harmonic if t.has("harmonic") else defect,
                      orders, source, speed)
@@ -724,7 +335,7 @@ def _read_band(t: _Table, source: SourceConfig, speed: SpeedConfig,
     return band
 
 
-def _read_capture(t: _Table) -> CaptureConfig:
+def _read_capture(t: Table) -> CaptureConfig:
     capture = CaptureConfig(
         seconds=t.get_float("seconds", 10.0, lo=0.0, lo_open=True, hi=600.0),
         after=t.get_float("after", 5.0, lo=0.0, hi=600.0),
@@ -737,7 +348,7 @@ def _read_capture(t: _Table) -> CaptureConfig:
     return capture
 
 
-def _read_envelope(t: _Table, nyquist: float) -> EnvelopeConfig:
+def _read_envelope(t: Table, nyquist: float) -> EnvelopeConfig:
     if not t.has("band_hz"):
         raise t.fail("band_hz", "missing; the carrier band [low, high] to demodulate")
     top = nyquist if nyquist > 0 else math.inf
@@ -748,7 +359,7 @@ def _read_envelope(t: _Table, nyquist: float) -> EnvelopeConfig:
     return EnvelopeConfig(band_hz=band)
 
 
-def _read_health(t: _Table) -> HealthConfig:
+def _read_health(t: Table) -> HealthConfig:
     if t.has("alias"):
         raise t.fail("alias", "renamed; use nyquist (the share of power in the top 10 % below Nyquist)")
     health = HealthConfig(
@@ -770,7 +381,7 @@ def _read_health(t: _Table) -> HealthConfig:
 _TOPIC_FORBIDDEN = re.compile(r"[+#\x00]")
 
 
-def _read_mqtt(t: _Table) -> MqttConfig:
+def _read_mqtt(t: Table) -> MqttConfig:
     prefix = t.get_str("prefix", "bandwatch")
     expected = "a topic prefix without +, # or NUL, not starting or ending with /, at most 1024 bytes"
     if (
@@ -829,19 +440,19 @@ def parse(text: str, file: str = "<config>") -> Config:
             line = int(m.group(1)) if m else None
         raise ConfigError(file, "", f"not valid TOML: {exc}", line) from None
 
-    locator = _Locator(text)
-    top = _Table(data, file, locator, "")
+    locator = Locator(text)
+    top = Table(data, file, locator, "")
 
-    def section(key: str, required: bool) -> _Table:
+    def section(key: str, required: bool) -> Table:
         if key not in data:
             if required:
                 raise ConfigError(file, key, f"missing; the [{key}] section is required")
-            return _Table({}, file, locator, key)
+            return Table({}, file, locator, key)
         value = top.raw(key)
         if not isinstance(value, dict):
-            raise ConfigError(file, key, f"expected a table [{key}], got {_type_name(value)}",
+            raise ConfigError(file, key, f"expected a table [{key}], got {type_name(value)}",
                               locator.find("", None, key))
-        return _Table(value, file, locator, key)
+        return Table(value, file, locator, key)
 
     for key in data:
         if key not in _SECTIONS:
@@ -856,14 +467,14 @@ def parse(text: str, file: str = "<config>") -> Config:
     spectrum = _read_spectrum(section("spectrum", False))
     speed = _read_speed(speed_t, source.nyquist if source.nyquist > 0 else math.inf)
 
-    def array_of(key: str) -> List[_Table]:
+    def array_of(key: str) -> List[Table]:
         raw = data.get(key, [])
         top.used.add(key)
         if not isinstance(raw, list) or not all(isinstance(b, dict) for b in raw):
             raise ConfigError(file, key, f"expected [[{key}]] tables", locator.find("", None, key))
-        return [_Table(item, file, locator, key, index) for index, item in enumerate(raw, start=1)]
+        return [Table(item, file, locator, key, index) for index, item in enumerate(raw, start=1)]
 
-    def unique(table: _Table, name: str, seen: Dict[str, int]) -> None:
+    def unique(table: Table, name: str, seen: Dict[str, int]) -> None:
         if name in seen:
             raise table.bad("name", name, f"a name not used by {table.table}[{seen[name]}]")
         seen[name] = table.index or 0

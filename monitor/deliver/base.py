@@ -1,5 +1,6 @@
 """The interface every delivery backend implements, and the topic table."""
 
+import time
 from typing import Any, Dict, Optional, Tuple
 
 Payload = Dict[str, Any]
@@ -49,3 +50,9 @@ class Sink:
         """Called at every turn of the measuring loop (at least every 0.2 s,
         samples or not), in the measuring thread; must return at once. A
         backend that draws or polls does it here; most do nothing."""
+
+    def heartbeat(self) -> float:
+        """Monotonic time of the backend's last sign of life. A backend that
+        delivers in the caller's thread is alive whenever asked; one with a
+        delivery thread reports when that thread last went round its loop."""
+        return time.monotonic()

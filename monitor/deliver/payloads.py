@@ -17,10 +17,18 @@ Payload = Dict[str, Any]
 NO_LIMITS: Payload = {"warning": None, "alarm": None}
 
 
+def utc_text(when: datetime.datetime) -> str:
+    """An aware time as payloads and recordings write it: UTC, ISO 8601
+    with milliseconds and Z."""
+    if when.tzinfo is None:
+        raise ValueError(f"{when=} has no time zone; give an aware datetime (UTC)")
+    when = when.astimezone(datetime.timezone.utc)
+    return when.strftime("%Y-%m-%dT%H:%M:%S.") + f"{when.microsecond // 1000:03d}Z"
+
+
 def utc_now() -> str:
-    """UTC time, ISO 8601 with milliseconds and Z."""
-    now = datetime.datetime.now(datetime.timezone.utc)
-    return now.strftime("%Y-%m-%dT%H:%M:%S.") + f"{now.microsecond // 1000:03d}Z"
+    """Now, as `utc_text` writes it."""
+    return utc_text(datetime.datetime.now(datetime.timezone.utc))
 
 
 def num(value: Optional[float]) -> Optional[float]:

@@ -6,36 +6,36 @@ every hop gives one frame and every `averages` frames one result. Stream
 time is counted from samples (lost samples included), never from the clock.
 """
 
-import dataclasses
 import logging
 import math
 import threading
 import time
-from dataclasses import dataclass
-from functools import cached_property
 from typing import Callable, Dict, List, Optional, Tuple
 
 import numpy as np
 
-from .. import __version__
-from ..analyse.bands import BandBank, BandValue
+from ..analyse.bands import BandBank
 from ..judge.baseline import Baseline, BaselineStore
 from .capture import Capture
+from ..analyse.units import quantity_unit
 from ..config import Config
 from ..errors import ConfigError
 from ..deliver.base import Sink
 from ..analyse.envelope import EnvelopeStage
 from ..judge.health import Change, Health
 from .notify import Notifier
-from ..deliver.payloads import NO_LIMITS, Payload, num, stamp, utc_now
-from ..analyse.peaks import interpolate_peak
+from ..deliver.payloads import Payload, utc_now
 from ..acquire.ring import Ring
 from ..judge.levels import BAND_LEVELS, LevelMachine
-from ..acquire.sources.base import Block, Source
+from ..acquire.block import Block
+from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
 from ..analyse.spectrum import SpectralStage, Spectrum
 from ..analyse.speed import SpeedTracker
 from ..analyse.stats import time_stats
+from .reload import merge
+from .reporting import Reporter
+from .results import BandState, CheckState, Observer, Result
 
 log = logging.getLogger("bandwatch.pipeline")
 
@@ -43,39 +43,6 @@ READ_TIMEOUT_S = 0.2
 # A helper thread (the source's reader, the sink's publisher) silent this
 # long is stuck: the watchdog pings stop, and systemd restarts the service.
 STALL_S = 10.0
-
-
-@dataclass
-class Result:
-    """Everything measured at one hop. What rules do not need (the dominant
-    peak, broadband velocity) is computed on first use: most results only
-    feed the rules, and only summaries and events read the rest."""
-
-    stream_s: float
-    speed_hz: Optional[float]
-    spectrum: Spectrum
-    bands: List[BandValue]
-    bank: BandBank
-    envelope: Optional[Spectrum] = None
-
-    @cached_property
-    def dominant(self) -> Tuple[np.ndarray, np.ndarray]:
-        """Frequency and RMS of each channel's strongest line above DC's lobe."""
-        spec = self.spectrum
-        return interpolate_peak(spec.rms_amplitude, spec.window, spec.bin_hz, spec.window.main_lobe,
-                                spec.psd.shape[1] - 1)
-
-    @property
-    def dominant_hz(self) -> np.ndarray:
-        return self.dominant[0]
-
-    @property
-    def dominant_rms(self) -> np.ndarray:
-        return self.dominant[1]
-
-    @cached_property
-    def velocity_rms(self) -> np.ndarray:
-        return self.bank.velocity_rms(self.spectrum)
 
 
 class Monitor:
@@ -107,11 +74,17 @@ class Monitor:
         self.since = utc_now()
         self.results = 0
         self.latest: Optional[Result] = None
+        self.reporter = Reporter(config.node, self.ids, config.source.channels, config.source.unit, self.since)
+        self._observers: List[Observer] = []
+        self._tickers: List[Callable[[], None]] = []
         self._build()
 
     def _build(self) -> None:
         cfg = self.config
         self.fs = self.source.sample_rate
+        if not self.fs > 0:
+            raise ValueError(f"the {self.source.describe()} source gives sample_rate={self.fs!r}; "
+                             "a monitor needs the rate before it is built")
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self.capture: Optional[Capture] = None
@@ -174,6 +147,55 @@ class Monitor:
         out.update({(c.name, c.channel): c.rule.level for c in self.health.checks})
         return out
 
+    def add_observer(self, fn: Observer) -> None:
+        """Call `fn(result)` in the measuring thread after every result, once
+        its levels, events and summary are out. `fn` must return quickly; it
+        may read the monitor's public views (`band_states`, `check_states`,
+        `speed_mode`, `recent_stats`) but change nothing."""
+        self._observers.append(fn)
+
+    def add_ticker(self, fn: Callable[[], None]) -> None:
+        """Call `fn()` at every turn of the measuring loop (at least every
+        READ_TIMEOUT_S, samples or not), for a display that must move while no
+        result comes. Same rules as an observer."""
+        self._tickers.append(fn)
+
+    def band_states(self) -> List[BandState]:
+        """Every band on every channel, in the order of `Result.bands`."""
+        latest = self.latest
+        channels = self.config.source.channels
+        out = []
+        for i, ((band, ch), rule, base) in enumerate(zip(self.bank.pairs, self.band_rules, self.baselines)):
+            limits = dict(rule.limits)
+            out.append(BandState(band, channels[ch], quantity_unit(band.quantity, self.config.source.unit),
+                                 latest.bands[i].value if latest is not None else None, rule.level,
+                                 limits.get("warning"), limits.get("alarm"), base.learning))
+        return out
+
+    def check_states(self) -> List[CheckState]:
+        """Every health check, in the order of the levels payload."""
+        return [CheckState(c.name, c.channel, c.rule.level, c.value, c.unit) for c in self.health.checks]
+
+    @property
+    def speed_hz(self) -> Optional[float]:
+        """The running speed now (None if unknown)."""
+        return self.speed.speed_hz
+
+    def speed_mode(self) -> str:
+        """"tracked" (a clear peak now), "held" (the last tracked speed, no
+        clear peak now) or "nominal"."""
+        if self.speed.locked:
+            return "tracked"
+        if self.config.speed.track and self.speed.speed_hz != self.config.speed.nominal_hz:
+            return "held"
+        return "nominal"
+
+    def recent_stats(self) -> Optional[Dict[str, np.ndarray]]:
+        """Time-domain statistics per channel over the samples the next
+        result covers (fewer at start); None with under two samples."""
+        n = min(self.ring.count, self.config.spectrum.span)
+        return time_stats(self.ring.latest(n)) if n >= 2 else None
+
     def request_reload(self, loader: Callable[[], Config]) -> None:
         """Ask for a reload with `loader` (it reads and checks the file);
         safe from a signal handler: the measuring loop does the work."""
@@ -203,18 +225,7 @@ class Monitor:
         values. The ring is kept unless [spectrum] changed; levels are kept
         for bands and checks that still exist."""
         old = self.config
-        refused = []
-        if config.node != old.node:
-            refused.append(f"node name {config.node!r} (still {old.node!r})")
-        if config.source != old.source:
-            refused.append("[source] settings")
-        if config.mqtt != old.mqtt:
-            refused.append("[mqtt] settings")
-        if config.capture != old.capture:
-            refused.append("[capture] settings")
-        keep = {"node": old.node, "source": old.source, "mqtt": old.mqtt, "capture": old.capture,
-                "summary_interval": old.summary_interval, "prefix": old.prefix}
-        new = dataclasses.replace(config, **keep)
+        new, refused = merge(old, config)
         levels = self.levels()
         self.config = new
         if (new.spectrum, new.envelope) != (old.spectrum, old.envelope):
@@ -228,9 +239,7 @@ class Monitor:
     # ------------------------------------------------------------------ run
 
     def status(self, state: str) -> Payload:
-        payload = stamp(self.node, self._stream_s)
-        payload.update(state=state, version=__version__, since=self.since)
-        return payload
+        return self.reporter.status(state, self._stream_s)
 
     def run(self, stop: Optional[threading.Event] = None) -> None:
         """Measure until the source ends or `stop` is set."""
@@ -243,6 +252,8 @@ class Monitor:
                 if self._making_progress():
                     self.notifier.watchdog()
                 self.sink.tick()
+                for tick in self._tickers:
+                    tick()
                 if self._reload_requested.is_set():
                     self._reload()
                 block = self.source.read(READ_TIMEOUT_S)
@@ -263,10 +274,7 @@ class Monitor:
     def _making_progress(self) -> bool:
         """True while the source's and the sink's threads show signs of life."""
         now = time.monotonic()
-        parts = [("the source's reader", self.source.heartbeat())]
-        beat = getattr(self.sink, "heartbeat", None)
-        if callable(beat):
-            parts.append(("the publisher", beat()))
+        parts = [("the source's reader", self.source.heartbeat()), ("the publisher", self.sink.heartbeat())]
         stuck = next((name for name, at in parts if now - at > self.stall_s), None)
         if stuck != self._stalled:
             if stuck:
@@ -301,7 +309,7 @@ class Monitor:
                     self.envelope.reset()
             self._pending = self.config.spectrum.size
         n = block.samples.shape[0]
-        counters = self.source.counters() if hasattr(self.source, "counters") else None
+        counters = self.source.counters()
         self._stream_s = (self._samples + n - 1) / self.fs
         self._emit_health(self.health.on_block(
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
@@ -343,6 +351,8 @@ class Monitor:
             self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+        for observe in self._observers:
+            observe(result)
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)
@@ -367,16 +377,8 @@ class Monitor:
             if change is None:
                 continue
             changed = True
-            ch = self.config.source.channels.index(value.channel)
-            event = self._event_base("band", value.name, value.channel, change, result.stream_s)
-            event.update(
-                value=num(value.value),
-                limits=self._limits(base),
-                unit=value.unit,
-                quantity=value.quantity,
-                speed_hz=num(result.speed_hz),
-                dominant_hz=num(result.dominant_hz[ch]),
-            )
+            event = self.reporter.band_event(value, change, base, result.stream_s, result.speed_hz,
+                                             result.dominant_hz)
             if self.capture is not None and BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0]):
                 # Raw samples around the rise, named now, written `after` s later.
                 event["capture"] = self.capture.trigger(self._samples, event)
@@ -385,29 +387,14 @@ class Monitor:
                      value.value, value.unit)
         return changed
 
-    @staticmethod
-    def _limits(base) -> Payload:
-        """The limits in force now (learned ones once known), as payloads carry them."""
-        warning, alarm = base.limits()
-        return {"warning": num(warning), "alarm": num(alarm)}
-
-    def _event_base(self, kind: str, name: str, channel: Optional[str], change, stream_s: float) -> Payload:
-        event = stamp(self.node, stream_s)
-        event.update(id=self.ids.take(), kind=kind, name=name, channel=channel,
-                     level=change[1], previous=change[0])
-        return event
-
     def _emit_health(self, changes: List[Change], result: Optional[Result] = None) -> bool:
         """Publish health level changes. Outside a result (`result` None) the
         levels snapshot follows at once; within one, the caller sends it."""
         latest = result or self.latest
         for check, change in changes:
-            event = self._event_base("health", check.name, check.channel, change, self._stream_s)
-            dominant = None
-            if latest is not None and check.channel is not None:
-                dominant = latest.dominant_hz[self.config.source.channels.index(check.channel)]
-            event.update(value=num(check.value), limits=dict(NO_LIMITS), unit=check.unit, quantity=None,
-                         speed_hz=num(latest.speed_hz if latest else None), dominant_hz=num(dominant))
+            event = self.reporter.health_event(check, change, self._stream_s,
+                                               latest.speed_hz if latest else None,
+                                               latest.dominant_hz if latest else None)
             self.sink.send("event", event)
             log.warning("health %s%s %s -> %s (%.3g %s)", check.name,
                         f"/{check.channel}" if check.channel else "", change[0], change[1],
@@ -419,39 +406,10 @@ class Monitor:
     # ------------------------------------------------------------- payloads
 
     def _levels_payload(self, result: Result) -> Payload:
-        payload = stamp(self.node, self._stream_s)
-        rows = [
-            {"name": v.name, "channel": v.channel, "level": rule.level, "value": num(v.value),
-             "limits": self._limits(base)}
-            for v, rule, base in zip(result.bands, self.band_rules, self.baselines)
-        ]
-        rows.extend({**row, "value": num(row["value"]), "limits": dict(NO_LIMITS)} for row in self.health.rows())
-        payload["levels"] = rows
-        return payload
+        return self.reporter.levels(result.bands, self.band_rules, self.baselines, self.health, self._stream_s)
 
     def _summary_payload(self, result: Result) -> Payload:
-        payload = stamp(self.node, result.stream_s)
-        unit = self.config.source.unit
         # Called within the frame that made `result`: the ring still holds
         # the samples the result covers (since the last gap, if one was nearer).
         stats = time_stats(self.ring.latest(min(self.ring.count, self.config.spectrum.span)))
-        channels = {}
-        for i, name in enumerate(self.config.source.channels):
-            channels[name] = {
-                "rms": num(stats["rms"][i]),
-                "peak": num(stats["peak"][i]),
-                "crest": num(stats["crest"][i]),
-                "kurtosis": num(stats["kurtosis"][i]),
-                "velocity_rms": num(result.velocity_rms[i]),
-                "dominant_hz": num(result.dominant_hz[i]),
-                "dominant_rms": num(result.dominant_rms[i]),
-                "unit": unit,
-            }
-        payload["speed_hz"] = num(result.speed_hz)
-        payload["channels"] = channels
-        payload["bands"] = [
-            {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level,
-             "limits": self._limits(base)}
-            for v, rule, base in zip(result.bands, self.band_rules, self.baselines)
-        ]
-        return payload
+        return self.reporter.summary(result, stats, self.band_rules, self.baselines)

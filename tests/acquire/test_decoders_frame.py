@@ -14,7 +14,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.acquire.decoders import Decoded, make_decoder
+from monitor.acquire.block import Block
+from monitor.acquire.decoders import make_decoder
 from monitor.acquire.decoders.frame import MAX_FRAME, encode_frame
 
 DTYPES = {1: "<i2", 2: "<i4", 3: "<f4"}
@@ -47,7 +48,7 @@ def hand_frame(samples: np.ndarray, seq: int, stype: int = 1, flags: int = 0, ti
     return b"\xa7\x4d" + body + struct.pack("<I", zlib.crc32(body))
 
 
-def decode_all(data: bytes, channels: int, chunk: int = 0) -> List[Decoded]:
+def decode_all(data: bytes, channels: int, chunk: int = 0) -> List[Block]:
     decoder = make_decoder("frame", channels)
     if not chunk:
         return decoder.feed(data)
@@ -167,7 +168,7 @@ def streams(draw):
 def test_every_intact_frame_decoded_once_in_order(case, cuts):
     channels, stream, blocks, garbage = case
     decoder = make_decoder("frame", channels)
-    out: List[Decoded] = []
+    out: List[Block] = []
     at = 0
     for size in cuts:
         out += decoder.feed(stream[at : at + size])

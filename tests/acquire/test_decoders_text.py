@@ -11,17 +11,18 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.acquire.decoders import Decoded, make_decoder
+from monitor.acquire.block import Block
+from monitor.acquire.decoders import make_decoder
 
 
-def feed_in(decoder, data: bytes, chunk: int) -> List[Decoded]:
-    out: List[Decoded] = []
+def feed_in(decoder, data: bytes, chunk: int) -> List[Block]:
+    out: List[Block] = []
     for at in range(0, len(data), chunk):
         out += decoder.feed(data[at : at + chunk])
     return out
 
 
-def rows(out: List[Decoded]) -> np.ndarray:
+def rows(out: List[Block]) -> np.ndarray:
     return np.concatenate([d.samples for d in out]) if out else np.empty((0, 3))
 
 

@@ -82,27 +82,25 @@ def test_sample_rate_mismatch_names_both(tmp_path):
     path = tmp_path / "r.wav"
     with RecordingWriter(str(path), 1000, ["x", "y"], "g") as writer:
         writer.write(np.zeros((10, 2)))
-    source = open_source(config(path, sample_rate=2000.0))
     with pytest.raises(SourceError, match=r"r\.wav: recorded at 1000 Hz.*sample_rate = 2000"):
-        source.open()
+        open_source(config(path, sample_rate=2000.0))
 
 
 def test_channel_count_mismatch(tmp_path):
     path = tmp_path / "r.wav"
     with RecordingWriter(str(path), 1000, ["x", "y"], "g") as writer:
         writer.write(np.zeros((10, 2)))
-    source = open_source(config(path, channels=["x", "y", "z"]))
     with pytest.raises(SourceError, match=r"r\.wav: holds 2 channel\(s\).*lists 3"):
-        source.open()
+        open_source(config(path, channels=["x", "y", "z"]))
 
 
 def test_missing_and_broken_files_are_source_errors(tmp_path):
     with pytest.raises(SourceError, match=r"absent\.wav"):
-        open_source(config(tmp_path / "absent.wav")).open()
+        open_source(config(tmp_path / "absent.wav"))
     bad = tmp_path / "bad.wav"
     bad.write_bytes(b"not a recording at all")
     with pytest.raises(SourceError, match=r"bad\.wav: not a WAV file"):
-        open_source(config(bad)).open()
+        open_source(config(bad))
 
 
 def test_a_file_bigger_than_a_block_is_never_read_whole(tmp_path):
@@ -137,6 +135,28 @@ def test_other_names_or_unit_are_warned_about(tmp_path, caplog):
     text = caplog.text
     assert "channels recorded as x, y are read as h, v" in text
     assert "recorded in g but [source] unit = m/s2" in text
+
+
+def test_the_rate_is_known_before_the_file_is_opened(tmp_path):
+    """A monitor is sized from the rate when it is built, before the source opens."""
+    from monitor.config import parse
+    from monitor.service.monitor import Monitor
+    from rig import ListSink
+
+    path = tmp_path / "r.wav"
+    with RecordingWriter(str(path), 1000, ["x"], "g") as writer:
+        writer.write(np.zeros((4096, 1)))
+    cfg = parse(f'[node]\nname = "n"\n[source]\nkind = "file"\npath = "{path}"\nchannels = ["x"]\nunit = "g"\n'
+                '[spectrum]\nsize = 256\n', "t.toml")
+    source = open_source(cfg.source)
+    assert source.sample_rate == 1000.0
+    monitor = Monitor(cfg, source, ListSink())
+    source.open()
+    try:
+        monitor.run()
+    finally:
+        source.close()
+    assert monitor.results > 0
 
 
 def test_a_block_holding_nan_or_infinity_is_dropped_as_a_gap_and_counted(tmp_path, caplog):

@@ -3,7 +3,8 @@
 import numpy as np
 import pytest
 
-from monitor.analyse.bands import STANDARD_GRAVITY, BandBank, line_weights
+from monitor.analyse.bands import BandBank, line_weights
+from monitor.analyse.units import STANDARD_GRAVITY
 from monitor.config import BandConfig
 from monitor.analyse.spectrum import SpectralStage
 

@@ -30,9 +30,9 @@ from monitor.deliver.base import Sink
 from monitor.deliver.payloads import encode
 from monitor.service.monitor import Monitor
 from monitor.acquire.recording import RecordingWriter
-from monitor.commands.replay import History, replay
+from monitor.commands.replay import replay
+from monitor.commands.replay_tally import History
 from monitor.acquire.sources import open_source
-from monitor.acquire.sources.base import Source
 from monitor.acquire.sources.memory import ArraySource
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -235,50 +235,22 @@ def test_replay_gives_the_events_of_the_pipeline_run_on_the_simulator(sim):
             assert r[field] == pytest.approx(e[field], rel=2e-5), (field, r, e)
 
 
-class Watched(Source):
-    """Passes the simulator's blocks on and notes the monitor's latest result
-    at each read. A simulator block (0.05 s, 205 samples) is shorter than a
-    hop (256), so between two reads at most one result is made."""
-
-    kind = "simulator"
-
-    def __init__(self, inner):
-        super().__init__(inner.config)
-        self.inner = inner
-        self.monitor = None
-        self.rows = []
-
-    def _open(self):
-        self.inner.open()
-
-    def _note(self):
-        if self.monitor is not None and self.monitor.results > len(self.rows):
-            latest = self.monitor.latest
-            self.rows.append((latest.stream_s, [b.value for b in latest.bands]))
-
-    def _read(self, timeout):
-        self._note()
-        block = self.inner.read(timeout)
-        self.ended = self.inner.ended
-        return block
-
-
 def test_replay_gives_the_band_values_of_every_result_of_the_live_run(sim):
     _, rec, _ = sim
     config = parse(SIM, "sim.toml")
     five = dataclasses.replace(config.source.simulator, seconds=5.0)
-    source = Watched(open_source(dataclasses.replace(config.source, simulator=five)))
+    source = open_source(dataclasses.replace(config.source, simulator=five))
     source.open()
     monitor = Monitor(config, source, ListSink())
-    source.monitor = monitor
+    rows = []
+    monitor.add_observer(lambda result: rows.append((result.stream_s, [b.value for b in result.bands])))
     monitor.run()
-    source._note()
-    assert len(source.rows) == monitor.results
+    assert len(rows) == monitor.results
     rep = replay(config, str(rec), io.StringIO(), keep_history=True)
     t, values = rep.history.arrays()
     assert rep.tally.results == monitor.results == len(t)
-    assert list(t) == [row[0] for row in source.rows]  # stream times from samples, exactly
-    live = np.array([row[1] for row in source.rows])
+    assert list(t) == [row[0] for row in rows]  # stream times from samples, exactly
+    live = np.array([row[1] for row in rows])
     # The file holds float32: band values agree to its precision.
     np.testing.assert_allclose(values, live, rtol=1e-5)
     np.testing.assert_allclose(rep.tally.max, live.max(axis=0), rtol=1e-5)

@@ -17,18 +17,18 @@ from pathlib import Path
 
 import pytest
 
-from monitor.commands.view import (
+from monitor.commands.view import Pacer, ViewSink
+from monitor.commands.view_render import (
     BandRow,
     ChannelRow,
     EventRow,
     HealthRow,
     Snapshot,
-    ViewSink,
     bar,
     next_limit,
-    share_of_limit,
     plain_line,
     render,
+    share_of_limit,
 )
 
 if sys.version_info >= (3, 11):
@@ -228,20 +228,25 @@ def test_waiting_snapshot_renders():
     assert plain_line(snap).startswith("stream 312.4 s | speed - | overall/x - mm/s normal")
 
 
-def test_sink_refreshes_at_most_every_interval():
-    """A tick per block costs a clock reading; the refresh runs at most every
-    0.5 s of (here, fake) wall time."""
+def test_refresh_runs_at_most_every_interval():
+    """A loop turn per block costs a clock reading; the redraw runs at most
+    every 0.5 s of (here, fake) wall time."""
     now = [0.0]
     calls = []
-    sink = ViewSink(interval=0.5, clock=lambda: now[0])
-    sink.refresh = lambda: calls.append(now[0])
+    pacer = Pacer(0.5, clock=lambda: now[0])
     for _ in range(1000):  # 1000 blocks, 10 ms apart: 10 s
-        sink.tick()
+        if pacer.due():
+            calls.append(now[0])
         now[0] += 0.01
     assert len(calls) == 20
     assert all(b - a >= 0.5 - 1e-9 for a, b in zip(calls, calls[1:]))
+
+
+def test_sink_keeps_the_last_events():
+    sink = ViewSink()
     for i in range(7):
         sink.send("event", {"id": i})
+    sink.send("levels", {"id": 99})
     assert [p["id"] for p in sink.events] == [2, 3, 4, 5, 6]  # the last 5
 
 

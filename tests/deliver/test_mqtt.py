@@ -17,7 +17,8 @@ import pytest
 
 from conftest import need_program
 from monitor.config import MqttConfig
-from monitor.deliver.mqtt import MqttSink, client_id, read_password
+from monitor.deliver.mqtt import MqttSink
+from monitor.deliver.mqtt_client import client_id, read_password
 from monitor.errors import DeliveryError
 from mqtt_broker import Broker, Collector, broker_fixture, free_port, make_certs, make_client_cert, wait_for
 

@@ -9,7 +9,8 @@ import scipy.signal
 from monitor.config import parse
 from monitor.deliver.payloads import encode
 from monitor.service.monitor import Monitor
-from monitor.acquire.sources.base import Block, Source
+from monitor.acquire.block import Block
+from monitor.acquire.sources.base import Source
 from monitor.acquire.sources.memory import ArraySource
 from rig import BASE, FS, ListSink
 
@@ -300,7 +301,7 @@ class QuietSource(Source):
             return None
         item = self.script.pop(0)
         self.clock.now += timeout
-        return None if item is None else Block(item)
+        return None if item is None else Block(samples=item)
 
 
 class FakeClock:

@@ -8,23 +8,10 @@ between calls, resynchronises on garbage and counts what it had to throw away.
 The binary frame format lives in `frame.py`, the text format in `text.py`.
 """
 
-from typing import Dict, List, NamedTuple, Optional
+from typing import Dict, List
 
-import numpy as np
-
-
-class Decoded(NamedTuple):
-    """Samples of one frame (or one run of CSV lines), shaped (n, channels),
-    raw values before scale. `lost` counts samples per channel missing just
-    before these (a sequence gap). `timestamp_us` is the frame's timestamp of
-    its first sample, when it carried one. `full_scale` is the largest
-    positive value of the frame's integer sample type (None for floats and
-    text), for the clipping check."""
-
-    samples: np.ndarray
-    lost: int = 0
-    timestamp_us: Optional[int] = None
-    full_scale: Optional[float] = None
+from ...config.schema import FORMATS
+from ..block import Block
 
 
 class Decoder:
@@ -46,7 +33,9 @@ class Decoder:
             ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "mismatched", "nonfinite"), 0
         )
 
-    def feed(self, data: bytes) -> List[Decoded]:
+    def feed(self, data: bytes) -> List[Block]:
+        """The blocks `data` completes: one per frame (or run of CSV lines),
+        raw values before scale, `lost` set after a sequence gap."""
         raise NotImplementedError
 
     def reset(self) -> None:
@@ -60,7 +49,6 @@ class Decoder:
         return 0
 
 
-FORMATS = ("frame", "csv")
 
 
 def make_decoder(format: str, channels: int) -> Decoder:

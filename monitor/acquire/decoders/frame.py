@@ -37,7 +37,8 @@ from typing import Dict, List, Optional, Tuple
 
 import numpy as np
 
-from . import Decoded, Decoder
+from ..block import Block, full_scale
+from . import Decoder
 
 SYNC = b"\xa7\x4d"
 VERSION = 1
@@ -99,7 +100,7 @@ class FrameDecoder(Decoder):
         self._ahead_pending: List[int] = []
         self._held = 0  # size of the incomplete frame held at the start of the buffer
 
-    def feed(self, data: bytes) -> List[Decoded]:
+    def feed(self, data: bytes) -> List[Block]:
         buf = self._buf
         buf += data
         end = len(buf)
@@ -107,7 +108,7 @@ class FrameDecoder(Decoder):
             # Still filling the held frame and no new sync arrived: nothing to do.
             self._ahead_from = end - 1
             return []
-        out: List[Decoded] = []
+        out: List[Block] = []
         counters = self.counters
         pos = 0
         held = 0
@@ -185,7 +186,7 @@ class FrameDecoder(Decoder):
         self._ahead_pending = waiting
         return False
 
-    def _accept(self, buf: bytearray, i: int, out: List[Decoded]) -> None:
+    def _accept(self, buf: bytearray, i: int, out: List[Block]) -> None:
         """Take the good frame at `i`: sequence bookkeeping, then deliver or drop."""
         _version, stype, nch, flags, n, seq = _HEAD.unpack_from(buf, i + 2)
         counters = self.counters
@@ -212,12 +213,13 @@ class FrameDecoder(Decoder):
             self._pending_lost += lost + n
             return
         counters["frames"] += 1
-        out.append(Decoded(samples, lost + self._pending_lost, timestamp, _FULL_SCALE.get(stype)))
+        out.append(Block(samples=samples, lost=lost + self._pending_lost, full_scale=_FULL_SCALE.get(stype),
+                         timestamp_us=timestamp))
         self._pending_lost = 0
 
 
 # Largest positive value of each integer sample type: samples there are clipped.
-_FULL_SCALE = {INT16: 32767.0, INT32: 2147483647.0}
+_FULL_SCALE = {INT16: full_scale("int16"), INT32: full_scale("int32")}
 
 
 def encode_frame(

@@ -24,7 +24,8 @@ from typing import List, Optional, Tuple
 
 import numpy as np
 
-from . import Decoded, Decoder
+from ..block import Block
+from . import Decoder
 
 MAX_LINE = 1024
 _MAX_TAIL = MAX_LINE + 1  # a full-length line may still end in CR
@@ -60,7 +61,7 @@ class CsvDecoder(Decoder):
         self._tail = b""
         self._skipping = False
 
-    def feed(self, data: bytes) -> List[Decoded]:
+    def feed(self, data: bytes) -> List[Block]:
         data = bytes(data)
         if self._skipping:
             i = data.find(b"\n")
@@ -118,7 +119,7 @@ class CsvDecoder(Decoder):
             return _NONFINITE, None
         return _GOOD, values
 
-    def _parse_lines(self, chunk: bytes) -> List[Decoded]:
+    def _parse_lines(self, chunk: bytes) -> List[Block]:
         verdicts = []
         rows: List[List[float]] = []
         lines = chunk.split(b"\n")[:-1]
@@ -132,7 +133,7 @@ class CsvDecoder(Decoder):
 
     # ---------------------------------------------------- whole-chunk path
 
-    def _parse_chunk(self, chunk: bytes) -> List[Decoded]:
+    def _parse_chunk(self, chunk: bytes) -> List[Block]:
         b = np.frombuffer(chunk, np.uint8)
         cls = _CLASS[b]
         newlines = np.flatnonzero(cls == _NEWLINE)
@@ -207,7 +208,7 @@ class CsvDecoder(Decoder):
 
     # ------------------------------------------------------------ output
 
-    def _collect(self, verdicts: np.ndarray, good_rows: np.ndarray, lengths) -> List[Decoded]:
+    def _collect(self, verdicts: np.ndarray, good_rows: np.ndarray, lengths) -> List[Block]:
         """Count the verdicts and cut the good rows into runs between rejected lines."""
         counters = self.counters
         good = verdicts == _GOOD
@@ -221,8 +222,8 @@ class CsvDecoder(Decoder):
         if not good.any():
             return []
         if not rejected.any():
-            return [Decoded(good_rows)]
+            return [Block(samples=good_rows)]
         # Index of the run each good line belongs to: rejected lines seen so far.
         run = np.cumsum(rejected)[good]
         cuts = np.flatnonzero(np.diff(run)) + 1
-        return [Decoded(block) for block in np.split(good_rows, cuts)]
+        return [Block(samples=block) for block in np.split(good_rows, cuts)]

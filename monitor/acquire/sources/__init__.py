@@ -8,7 +8,8 @@ from typing import Dict, Tuple
 
 from ...config import SourceConfig
 from ...errors import SourceError
-from .base import Block, Source
+from ..block import Block
+from .base import Source
 
 # kind -> (module, class). Kinds missing here are accepted by the config but
 # cannot run yet; `open_source` says so plainly.

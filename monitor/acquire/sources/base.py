@@ -7,32 +7,14 @@ implements `_open`, `_read` and `_close`.
 
 import logging
 import time
-from typing import Dict, NamedTuple, Optional
+from typing import Dict, Optional
 
 import numpy as np
 
 from ...config import SourceConfig
+from ..block import Block
 
 log = logging.getLogger("bandwatch.sources")
-
-
-class Block(NamedTuple):
-    """Consecutive samples, shaped (n, channels), in raw units (before scale).
-
-    `lost` counts samples per channel known to be missing just before this
-    block (a sequence gap); the pipeline never lets a spectrum span them.
-    `full_scale` is the largest positive value of the raw integer type
-    (32767 for int16), when the samples came as integers: a sample at or
-    beyond it in magnitude is clipped.
-    `timestamp_us` is the sensor's time of the first sample, when it sent one.
-    A block with no samples carries only a loss: the source dropped a block
-    that held NaN or infinite values.
-    """
-
-    samples: np.ndarray
-    lost: int = 0
-    full_scale: Optional[float] = None
-    timestamp_us: Optional[int] = None
 
 
 class Source:
@@ -55,22 +37,22 @@ class Source:
     def open(self) -> None:
         self._open()
 
-    def describe(self) -> str:
-        """Kind and address, for log lines and errors."""
-        return self.kind
-
-    def counters(self) -> Dict[str, int]:
-        """Blocks handed out whole (`frames`) and dropped for NaN or infinite
-        samples (`nonfinite`): the corrupt share of a source that has no
-        frames of its own counts in its blocks. Stream sources count their
-        wire frames instead."""
-        return {"frames": self.blocks - self.rejected, "nonfinite": self.rejected}
-
     def heartbeat(self) -> float:
         """Monotonic time of the source's last sign of life. Sources read in
         the caller's thread are alive whenever asked; a source with a
         reader thread reports when that thread last went round its loop."""
         return time.monotonic()
+
+    def counters(self) -> Dict[str, int]:
+        """Cumulative counters of the link and its decoder (frames, gaps,
+        connects, ...). A source without a decoder counts its blocks: handed
+        out whole (`frames`) and dropped for NaN or infinite samples
+        (`nonfinite`), so its corrupt share counts in blocks."""
+        return {"frames": self.blocks - self.rejected, "nonfinite": self.rejected}
+
+    def describe(self) -> str:
+        """Kind and address, for log lines, errors and the view."""
+        return self.kind or self.config.kind
 
     def close(self) -> None:
         self._close()
@@ -89,7 +71,7 @@ class Source:
         self.blocks += 1
         self.samples += n
         self.lost += block.lost
-        if getattr(self.config, "realtime", False):
+        if self.config.realtime:
             self._pace(n)
         return block
 

@@ -20,14 +20,12 @@ import numpy as np
 from ...config import SourceConfig
 from ...errors import SourceError
 from ..recording import RecordingReader, open_recording
-from .base import Block, Source
+from ..block import Block, full_scale
+from .base import Source
 
 log = logging.getLogger("bandwatch.sources")
 
 BLOCK_SECONDS = 0.1
-
-
-_FULL_SCALE = {"uint8": 127.0, "int16": 32767.0, "int24": 8388607.0, "int32": 2147483647.0}
 
 
 class FileSource(Source):
@@ -36,27 +34,20 @@ class FileSource(Source):
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
         self._reader: Optional[RecordingReader] = None
-        self._full_scale: Optional[float] = None
-        self.block = 0
+        # The header is read now, so the sample rate is known before anything
+        # is built on this source; a missing or unfit file fails here.
+        with open_recording(config.path) as reader:
+            self._check(reader)
+            self.sample_rate = float(reader.sample_rate)
+            self.block = max(1, int(round(reader.sample_rate * BLOCK_SECONDS)))
+            self._full_scale = full_scale(reader.sample_type)
+
+    def _open(self) -> None:
+        self._reader = open_recording(self.config.path)
+        self.ended = False
 
     def describe(self) -> str:
         return f"file {self.config.path}"
-
-    def _open(self) -> None:
-        cfg = self.config
-        reader = open_recording(cfg.path)
-        try:
-            self._check(reader)
-        except BaseException:
-            reader.close()
-            raise
-        self._reader = reader
-        self.sample_rate = float(reader.sample_rate)
-        self.block = max(1, int(round(reader.sample_rate * BLOCK_SECONDS)))
-        # Integer recordings clip at their type's largest value (uint8 is
-        # widened to -128..127).
-        self._full_scale = _FULL_SCALE.get(reader.sample_type)
-        self.ended = False
 
     def _check(self, reader: RecordingReader) -> None:
         cfg = self.config
@@ -85,7 +76,7 @@ class FileSource(Source):
         if samples.shape[0] == 0:
             self.ended = True
             return None
-        return Block(samples.astype(np.float64), 0, self._full_scale)
+        return Block(samples=samples.astype(np.float64), full_scale=self._full_scale)
 
     def _close(self) -> None:
         if self._reader is not None:

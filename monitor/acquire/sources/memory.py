@@ -1,15 +1,18 @@
-"""A source that replays samples held in memory.
+"""Sources that replay what is held in memory: samples, or wire bytes.
 
-For tests, benchmarks and embedding: like a loopback port, it lets the whole
-pipeline run with no sensor. Not a config kind; build it in code.
+For tests, benchmarks and embedding: like a loopback port, they let the whole
+pipeline run with no sensor. Not config kinds; build them in code.
 """
 
-from typing import Dict, Optional
+import threading
+from typing import Dict, Optional, Sequence
 
 import numpy as np
 
 from ...config import SourceConfig
-from .base import Block, Source
+from ..block import Block
+from .base import Source
+from .stream import POLL_S, StreamSource
 
 
 class ArraySource(Source):
@@ -50,6 +53,45 @@ class ArraySource(Source):
         if later:
             end = min(later)
         lost = self._gaps.pop(self._pos, 0)
-        block = Block(self._samples[self._pos : end], lost)
+        block = Block(samples=self._samples[self._pos : end], lost=lost)
         self._pos = end
         return block
+
+
+class BytesSource(StreamSource):
+    """Wire bytes for `[source] format`, held in memory as the chunks a link
+    would read, taken through the same path as every link kind: a reader
+    thread feeds them to the decoder, and the blocks wait in the bounded
+    queue for `read`.
+
+    Like a TCP link it waits for room in the queue instead of overflowing
+    it, so every sample arrives: it measures the path, not a link. It ends
+    once every chunk is decoded and every block read.
+    """
+
+    kind = "bytes"
+    pushes_back = True
+
+    def __init__(self, config: SourceConfig, chunks: Sequence[bytes]) -> None:
+        super().__init__(config)
+        self._chunks = chunks
+        self._done = threading.Event()
+
+    def _loop(self) -> None:
+        for chunk in self._chunks:
+            if self._stop.is_set():
+                return
+            self._tick()
+            self._consume(chunk)
+        self._done.set()
+        # The thread stays until closed: a reader gone quiet looks stalled.
+        while not self._stop.wait(POLL_S):
+            self._tick()
+
+    def _read(self, timeout: float) -> Optional[Block]:
+        # Checked first: waiting out `timeout` on an empty queue at the end
+        # would add idle time to what the bench measures.
+        if self._done.is_set() and self.queued == 0:
+            self.ended = True
+            return None
+        return super()._read(timeout)

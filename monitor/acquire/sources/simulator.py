@@ -15,7 +15,8 @@ from typing import Optional
 import numpy as np
 
 from ...config import SourceConfig
-from .base import Block, Source
+from ..block import Block
+from .base import Source
 
 _BLOCK_SECONDS = 0.05
 _WANDER = 0.003
@@ -65,4 +66,4 @@ class SimulatorSource(Source):
         if self.sim.noise > 0:
             out += self._rng.normal(0.0, self.sim.noise, size=out.shape)
         self._n += n
-        return Block(out)
+        return Block(samples=out)

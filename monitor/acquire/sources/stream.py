@@ -46,9 +46,10 @@ from typing import Any, Callable, Deque, Dict, List, Optional
 import numpy as np
 
 from ...config import SourceConfig
-from ..decoders import Decoded, make_decoder
+from ..block import Block
+from ..decoders import make_decoder
 from ...errors import SourceError
-from .base import Block, Source
+from .base import Source
 
 log = logging.getLogger("bandwatch.sources")
 
@@ -246,7 +247,7 @@ class StreamSource(Source):
         else:
             log.debug("%s: %s", self.describe(), what)
 
-    def _emit_decoded(self, decoded: List[Decoded]) -> None:
+    def _emit_decoded(self, decoded: List[Block]) -> None:
         """Join consecutive decoded pieces into as few blocks as possible,
         starting a new block wherever a piece follows a gap. A block's
         timestamp is that of its first piece."""
@@ -284,7 +285,7 @@ class StreamSource(Source):
             held = (now - self._last_arrival) * self.sample_rate - samples.shape[0]
             lost += max(1, int(round(held)))
         self._last_arrival = now
-        self._put(Block(samples, lost, full_scale, stamp))
+        self._put(Block(samples=samples, lost=lost, full_scale=full_scale, timestamp_us=stamp))
 
     def _put(self, block: Block) -> None:
         size = block.samples.shape[0]
