@@ -1,11 +1,13 @@
 """Reading a tone's frequency and amplitude between DFT lines.
 
-The estimator is the two-line ratio method of Grandke (IEEE Trans. Instrum.
-Meas. 32(2), 1983): the ratio of the larger neighbour to the peak line fixes
-the tone's offset, and the window's response at that offset corrects the
-amplitude. Grandke gives the Hann case in closed form, (2a - 1)/(a + 1); here
-the same ratio is inverted numerically from each window's exact transform
-(monitor.windows), so every window gets the method.
+The ratio of the larger neighbour to the peak line fixes the tone's offset
+from the peak line, and the window's response at that offset corrects the
+amplitude. For the Hann window this is the two-line method of Grandke (IEEE
+Trans. Instrum. Meas. 32(2), 1983), with the closed form (2a - 1)/(a + 1).
+For every window this project instead inverts the same ratio numerically
+from the window's exact transform (monitor.analyse.windows): for Hann that agrees
+with the closed form, for the others it is this project's generalisation. Its accuracy per window, near DC and far
+from it, is measured in tests/test_peaks.py and tabled in the README.
 """
 
 from typing import Tuple
@@ -18,26 +20,38 @@ from .windows import Window
 def interpolate_peak(
     magnitude: np.ndarray, window: Window, bin_hz: float, lo_bin: int, hi_bin: int
 ) -> Tuple[np.ndarray, np.ndarray]:
-    """Frequency (Hz) and corrected magnitude of the largest line in
+    """Frequency (Hz) and corrected magnitude of the largest peak in
     [lo_bin, hi_bin] of each row of `magnitude` (rows: channels, columns: lines).
 
     `magnitude` must be linear in amplitude (an RMS amplitude spectrum), not
-    power. Rows with no signal give the line frequency and zero.
+    power. A peak is a line above zero and at least as large as both its
+    neighbours, those outside the range included: the skirt of a tone outside
+    the range is no peak in it. A row with no peak in the range (no signal,
+    or only such a skirt) gives NaN for both.
     """
     mag = np.atleast_2d(magnitude)
-    last = mag.shape[1] - 1
+    rows, lines = mag.shape
+    last = lines - 1
     lo_bin = max(0, lo_bin)
     hi_bin = min(last, hi_bin)
-    k = lo_bin + np.argmax(mag[:, lo_bin : hi_bin + 1], axis=1)
-    rows = np.arange(mag.shape[0])
-    peak = mag[rows, k]
-    left = np.where(k > 0, mag[rows, np.maximum(k - 1, 0)], 0.0)
-    right = np.where(k < last, mag[rows, np.minimum(k + 1, last)], 0.0)
+    if hi_bin < lo_bin:
+        return np.full(rows, np.nan), np.full(rows, np.nan)
+    padded = np.zeros((rows, lines + 2))  # a zero line beyond either end
+    padded[:, 1:-1] = mag
+    inner = padded[:, lo_bin + 1 : hi_bin + 2]
+    is_peak = (inner > 0) & (inner >= padded[:, lo_bin : hi_bin + 1]) & (inner >= padded[:, lo_bin + 2 : hi_bin + 3])
+    ranked = np.where(is_peak, inner, -1.0)
+    k = lo_bin + np.argmax(ranked, axis=1)
+    found = ranked.max(axis=1, initial=-1.0) > 0
+    index = np.arange(rows)
+    peak = mag[index, k]
+    left = padded[index, k]
+    right = padded[index, k + 2]
     side = np.where(right >= left, 1.0, -1.0)
     neighbour = np.maximum(left, right)
     with np.errstate(invalid="ignore", divide="ignore"):
-        ratio = np.where(peak > 0, neighbour / peak, 0.0)
+        ratio = np.where(found, neighbour / np.where(found, peak, 1.0), 0.0)
     offset = window.offset_from_ratio(ratio)
-    freq = (k + side * offset) * bin_hz
-    amplitude = peak / window.gain_at(offset)
+    freq = np.where(found, (k + side * offset) * bin_hz, np.nan)
+    amplitude = np.where(found, peak / window.gain_at(offset), np.nan)
     return freq, amplitude

@@ -4,8 +4,9 @@ Every window offered is a cosine sum, w[n] = sum_k (-1)^k a_k cos(2 pi k n / N),
 in its periodic ("DFT-even") form, as scipy.signal.get_window returns by
 default. A `Window` is built once per spectrum size and carries what the
 spectral stage needs, computed once: the samples, the coherent gain, the
-equivalent noise bandwidth, and a table that turns the ratio of two adjacent
-bin magnitudes into the tone's offset from the larger bin.
+equivalent noise bandwidth, the spread of its main lobe (for integration),
+and a table that turns the ratio of two adjacent bin magnitudes into the
+tone's offset from the larger bin.
 """
 
 from functools import lru_cache
@@ -56,6 +57,7 @@ class Window:
         self.coherent_gain = self.sum / size
         self.enbw_bins = size * self.sum_sq / self.sum**2
         self.main_lobe = MAIN_LOBE_BINS[name]
+        self.spread = _spread(self.coefficients)
         self._ratio_offsets, self._ratios, self._gains = _ratio_table(name, size)
 
     def kernel(self, offset_bins: np.ndarray) -> np.ndarray:
@@ -74,6 +76,18 @@ class Window:
     def scalloping_loss_db(self) -> float:
         """Loss of a tone half-way between two bins, in dB."""
         return float(-20 * np.log10(self.kernel(np.array([0.5]))[0]))
+
+
+def _spread(coefficients: np.ndarray) -> Tuple[float, float]:
+    """Second and fourth moments (lines**2, lines**4) of the window's power
+    response to a tone on a line: that response is a_0**2 on the line and
+    (a_k / 2)**2 at k lines either side, so the moments follow from the
+    coefficients alone."""
+    a = coefficients
+    k = np.arange(len(a))
+    side = a[1:] ** 2 / 2.0  # both sides of line k together
+    total = a[0] ** 2 + side.sum()
+    return float((k[1:] ** 2 * side).sum() / total), float((k[1:] ** 4 * side).sum() / total)
 
 
 def _kernel(coefficients: np.ndarray, size: int, x: np.ndarray) -> np.ndarray:

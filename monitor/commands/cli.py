@@ -223,6 +223,11 @@ def print_check(config: Config, out: TextIO) -> None:
     if sp.rpm is not None:
         tracked = f", tracked in {sp.search_hz[0]:g}..{sp.search_hz[1]:g} Hz" if sp.track and sp.search_hz else ""
         w(f"speed: {sp.rpm:g} rpm ({sp.rpm / 60:.6g} Hz) nominal{tracked}\n")
+        if sp.track and sp.search_hz and sp.search_hz[1] > 2 * sp.search_hz[0]:
+            lo, hi = sp.search_hz
+            w(f"  warning: search_hz {lo:g}..{hi:g} Hz spans more than an octave ({hi / lo:.3g}:1), so it can "
+              "hold 1x and a harmonic; the tracker then takes the lowest of a series, which a half-order "
+              "line would fool; keep the range within an octave around 1x\n")
     else:
         w("speed: none given (order bands need [speed] rpm)\n")
     for bearing in config.bearings:

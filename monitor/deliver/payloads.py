@@ -1,4 +1,4 @@
-"""Building the JSON payloads of spec section 4, and encoding them.
+"""Building the JSON payloads (README, What is published), and encoding them.
 
 Numbers are rounded to 6 significant digits (more than any accelerometer
 resolves) and non-finite values become null, so every line is valid JSON and

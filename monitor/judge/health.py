@@ -1,7 +1,7 @@
 """Health checks: is the measurement itself to be trusted?
 
 Each check measures one value and runs it through the same level machine as
-the bands, with the levels `normal` and `fault` (spec section 4):
+the bands, with the levels `normal` and `fault` (README, What is published):
 
 | check    | scope   | value                                                    | fault at or above |
 | -------- | ------- | -------------------------------------------------------- | ----------------- |

@@ -4,7 +4,7 @@ The last `seconds + after` seconds of samples (in the unit, after scale) sit
 in a fixed ring allocated at start. When a band rises to warning or alarm,
 the capture is named at once (the event carries the name) and written once
 `after` more seconds of samples have arrived: `seconds` before the trigger
-and `after` after it, as a recording (monitor.recording) in `dir`. Triggers
+and `after` after it, as a recording (monitor.acquire.recording) in `dir`. Triggers
 while a capture is pending share its file. Only the newest `keep` captures
 are kept. A gap in the samples clears the ring, as it does the spectra: a
 capture never joins samples across one, so it may hold less than asked.

@@ -116,11 +116,13 @@ class Monitor:
         that still exists keeps it (or the highest level it still has)."""
         cfg = self.config
         lines = cfg.spectrum.size // 2 + 1
-        self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines)
+        self.bank = BandBank(cfg.bands, cfg.source.channels, cfg.source.unit, self.stage.bin_hz, lines,
+                             self.stage.window)
         old_speed = getattr(self, "speed", None)
         self.speed = SpeedTracker(cfg.speed)
         if old_speed is not None and old_speed.locked and cfg.speed.track:
             self.speed.speed_hz = old_speed.speed_hz
+            self.speed.measured_s = old_speed.measured_s
         self.baseline_store.reload()  # a reset-baseline takes effect here
         self.baselines = [Baseline(b, cfg.source.channels[ch], self.baseline_store) for b, ch in self.bank.pairs]
         self.band_rules = [
@@ -355,7 +357,10 @@ class Monitor:
             observe(result)
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
-        speed_hz = self.speed.update(spectrum)
+        # The spectrum describes its samples as a whole: the speed read from
+        # it belongs to their middle, half a span before stream_s.
+        centre_s = stream_s - (self.config.spectrum.span - 1) / (2 * self.fs)
+        speed_hz = self.speed.update(spectrum, centre_s)
         return Result(
             stream_s=stream_s,
             speed_hz=speed_hz,
@@ -363,6 +368,7 @@ class Monitor:
             bands=self.bank.evaluate({"raw": spectrum, "envelope": envelope}, speed_hz),
             bank=self.bank,
             envelope=envelope,
+            speed_s=self.speed.measured_s,
         )
 
     # ---------------------------------------------------------------- rules

@@ -103,6 +103,7 @@ class Reporter:
                 "unit": self.unit,
             }
         payload["speed_hz"] = num(result.speed_hz)
+        payload["speed_s"] = None if result.speed_s is None else round(result.speed_s, 6)
         payload["channels"] = channels
         payload["bands"] = [
             {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level,

@@ -27,6 +27,7 @@ class Result:
     bands: List[BandValue]
     bank: BandBank
     envelope: Optional[Spectrum] = None
+    speed_s: Optional[float] = None  # stream time speed_hz was read at; None if nominal
 
     @cached_property
     def dominant(self) -> Tuple[np.ndarray, np.ndarray]:

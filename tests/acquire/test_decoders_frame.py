@@ -1,7 +1,7 @@
-"""The binary frame decoder against the wire format of the interface (section 2).
+"""The binary frame decoder against the wire format (README, The sensor wire format).
 
 Frames in the reference checks are assembled byte by byte with struct from the
-spec table, and their CRC comes from zlib.crc32 and from a bit-by-bit CRC-32
+README's table, and their CRC comes from zlib.crc32 and from a bit-by-bit CRC-32
 written out in the test from the definition of the IEEE 802.3 polynomial.
 """
 
@@ -34,7 +34,7 @@ def crc32_bitwise(data: bytes) -> int:
 
 def hand_frame(samples: np.ndarray, seq: int, stype: int = 1, flags: int = 0, timestamp: Optional[int] = None,
                version: int = 1, channels: Optional[int] = None, n: Optional[int] = None) -> bytes:
-    """A frame built field by field from the spec table (not with encode_frame)."""
+    """A frame built field by field from the README's table (not with encode_frame)."""
     rows, cols = samples.shape
     body = struct.pack("<BBBBHI", version, stype, cols if channels is None else channels, flags,
                        rows if n is None else n, seq)
@@ -71,7 +71,7 @@ def test_zlib_crc32_is_the_ieee_crc():
 def test_hand_assembled_frame_decodes_and_matches_encode_frame():
     samples = np.array([[1, -2, 3], [32767, -32768, 0]])
     frame = hand_frame(samples, seq=7)
-    # Spec table: 12 header bytes + 2*3*2 sample bytes + 4 CRC bytes.
+    # README's frame table: 12 header bytes + 2*3*2 sample bytes + 4 CRC bytes.
     assert len(frame) == 12 + 12 + 4
     assert frame[:2] == b"\xa7\x4d"
     # CRC covers version..last sample; compare with the bitwise definition.

@@ -7,6 +7,7 @@ from monitor.acquire.ring import Ring
 
 
 def test_keeps_the_newest_samples_in_order():
+    # The newest 10 of 100 written rows, in order: rows 90..99, by construction.
     ring = Ring(2, 10)
     data = np.arange(200, dtype=float).reshape(100, 2)
     for start in range(0, 100, 7):

@@ -1,6 +1,6 @@
 """Serial source through real pseudo-terminals, opened with pyserial.
 
-Frames follow the wire format of interface.md section 2. The far end of the
+Frames follow the README's wire format. The far end of the
 line is a real pty: os.openpty() where a plain line is enough, and socat's
 pty pair (killed and restarted under the same link names) to unplug and
 replug the device.
@@ -55,7 +55,7 @@ def test_frames_written_on_a_pty_arrive_decoded():
     try:
         assert wait_until(lambda: source.counters()["connects"] == 1, 2.0)
         sent = [frame_samples(100 * k) for k in range(50)]
-        # Frame format of interface.md section 2; int16 values come back
+        # Frame format (README, The sensor wire format); int16 values come back
         # exactly, in order, as one (n, C) array per channel pair.
         os.write(master, b"".join(encode_frame(s, seq=k) for k, s in enumerate(sent)))
         got = []

@@ -1,7 +1,7 @@
 """TCP sources against real sockets on loopback.
 
 The peer in each test is a plain standard-library socket speaking the frame
-format of interface.md section 2. A reset is a close with SO_LINGER on and a
+format of the README (The sensor wire format). A reset is a close with SO_LINGER on and a
 linger time of 0, which makes the kernel abort the connection with RST
 instead of FIN (common practice); a half-open peer is one that simply stops
 sending.
@@ -103,7 +103,7 @@ def test_client_receives_frames(closing):
     peer, _ = server.accept()
     peer.sendall(frames(0, 40))
     blocks = collect(source, 40 * N)
-    # Frame format of interface.md section 2: the int16 samples come back exactly.
+    # Frame format (README, The sensor wire format): the int16 samples come back exactly.
     assert np.array_equal(np.concatenate([b.samples for b in blocks]), expected(0, 40))
     assert [b.lost for b in blocks] == [0] * len(blocks)
     counters = source.counters()

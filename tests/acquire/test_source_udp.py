@@ -1,7 +1,7 @@
 """UDP source against real datagrams on loopback.
 
-Frames follow interface.md section 2: "Over UDP, each datagram holds one or
-more whole frames."
+Frames follow the README's wire format: over UDP each datagram holds one or
+more whole frames.
 """
 
 import socket
@@ -70,7 +70,7 @@ def udp():
 
 
 def handmade_frame(samples: np.ndarray, seq: int, timestamp_us: int) -> bytes:
-    """A frame built field by field from the table in interface.md section 2,
+    """A frame built field by field from the table in the README's wire format,
     independently of the project's encoder: int16 samples, timestamp present,
     CRC-32 as zlib.crc32 computes it over version..last sample."""
     n, channels = samples.shape

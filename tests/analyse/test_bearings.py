@@ -8,9 +8,10 @@ from monitor.analyse.bearings import defect_orders
 
 
 def test_worked_example_deep_groove_bearing():
-    # check-values.md, Randall and Antoni (2011) formulas; geometry of a common
-    # deep-groove bearing from memory: n = 9, d = 7.94 mm, D = 39.04 mm, phi = 0
-    # gives BPFO 3.585, BPFI 5.415, FTF 0.398, BSF 2.357 (orders).
+    # Randall and Antoni (2011), section 2, the four defect frequency formulas,
+    # worked by hand; the geometry, n = 9, d = 7.94 mm, D = 39.04 mm, phi = 0,
+    # is that of a common deep-groove bearing written from memory (no
+    # catalogue at hand): BPFO 3.585, BPFI 5.415, FTF 0.398, BSF 2.357 orders.
     orders = defect_orders(9, 7.94, 39.04, 0.0)
     assert orders["bpfo"] == pytest.approx(3.585, abs=5e-4)
     assert orders["bpfi"] == pytest.approx(5.415, abs=5e-4)
@@ -19,7 +20,8 @@ def test_worked_example_deep_groove_bearing():
 
 
 def test_contact_angle_and_identities():
-    # Randall and Antoni (2011): BPFO + BPFI = n, and BPFO = n * FTF.
+    # Randall and Antoni (2011), section 2 formulas: BPFO + BPFI = n, BPFO = n * FTF,
+    # and BSF = D / (2 d) (1 - (d/D cos phi)^2).
     orders = defect_orders(12, 10.0, 60.0, 15.0)
     assert orders["bpfo"] + orders["bpfi"] == pytest.approx(12.0)
     assert orders["bpfo"] == pytest.approx(12 * orders["ftf"])

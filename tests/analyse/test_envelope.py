@@ -81,7 +81,9 @@ quantity = "acceleration"
 
 def outer_race_fault(seconds, strength, seed=0):
     """An invented machine: 1x at 25 Hz, noise, and (from the middle on)
-    impacts at BPFO = 3.585 x 25 Hz that ring a 3.5 kHz resonance."""
+    impacts at BPFO = 3.585 x 25 Hz that ring a 3.5 kHz resonance. BPFO in
+    orders, n/2 (1 - d/D) with n = 9, d = 7.94, D = 39.04, is 3.584785
+    (Randall and Antoni 2011, worked by hand; geometry from memory)."""
     n = int(seconds * FS)
     t = np.arange(n) / FS
     rng = np.random.default_rng(seed)
@@ -97,7 +99,8 @@ def outer_race_fault(seconds, strength, seed=0):
 def test_outer_race_fault_shows_in_the_envelope_band():
     config = parse(CONFIG)
     band = config.bands[0]
-    # The band's edges: BPFO x 25 Hz +- 5 % (Randall and Antoni 2011 orders).
+    # The band's edges: BPFO x 25 Hz +- 5 % (Randall and Antoni 2011 orders;
+    # width 0.05 is the README's default).
     assert band.edges_hz(25.0) == pytest.approx((3.584785 * 25 * 0.95, 3.584785 * 25 * 1.05), rel=1e-5)
     sink = ListSink()
     x = outer_race_fault(20.0, 0.5)
@@ -111,6 +114,7 @@ def test_outer_race_fault_shows_in_the_envelope_band():
     healthy.run()
     before = {b.name: b.value for b in healthy.latest.bands}
     # The envelope band grows many times over; the raw band at the same
-    # frequencies barely moves (the impacts' energy sits at 3.5 kHz).
+    # frequencies barely moves (the impacts' energy sits at 3.5 kHz). The
+    # factors 10 and 1.5 are this invented scenario's margins, not a standard.
     assert bands["outer-env"] > 10 * before["outer-env"]
     assert bands["outer-raw"] < 1.5 * before["outer-raw"]

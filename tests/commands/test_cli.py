@@ -1,4 +1,4 @@
-"""The `bandwatch` command, run for real in a subprocess (spec section 1).
+"""The `bandwatch` command, run for real in a subprocess (README, Commands and exit codes).
 
 Exit codes: 0 done; 2 bad usage or bad config (nothing started); 1 failure at
 run time. JSON goes to stdout, logs to stderr.
@@ -17,6 +17,7 @@ from pathlib import Path
 
 import pytest
 
+from conftest import IN_CI
 from monitor import __version__
 
 if sys.version_info >= (3, 11):
@@ -34,19 +35,25 @@ DEMO_RPM = float(DEMO_TOML["speed"]["rpm"])  # 1480
 DEMO_FS = float(DEMO_TOML["source"]["sample_rate"])  # 5120 Hz
 DEMO_SIZE = int(DEMO_TOML["spectrum"]["size"])  # 4096
 DEMO_OVERLAP = float(DEMO_TOML["spectrum"]["overlap"])  # 0.5
+DEMO_AVERAGES = int(DEMO_TOML["spectrum"]["averages"])  # 4
 
 TIME_RE = re.compile(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z$")
 COMMON_FIELDS = {"node", "time", "stream_s"}
-SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "channels", "bands"}
+SUMMARY_FIELDS = COMMON_FIELDS | {"speed_hz", "speed_s", "channels", "bands"}
 SUMMARY_CHANNEL_FIELDS = {"rms", "peak", "crest", "kurtosis", "velocity_rms", "dominant_hz", "dominant_rms", "unit"}
 SUMMARY_BAND_FIELDS = {"name", "channel", "value", "unit", "level", "limits"}
 LIMITS_FIELDS = {"warning", "alarm"}
-HEALTH_CHECKS = {"stale", "gap", "corrupt", "clipping", "flatline", "nyquist", "rate", "blind", "queue", "config"}
 EVENT_FIELDS = COMMON_FIELDS | {
     "id", "kind", "name", "channel", "level", "previous", "value", "limits", "unit", "quantity",
     "speed_hz", "dominant_hz",
 }
 STATUS_FIELDS = COMMON_FIELDS | {"state", "version", "since"}
+README = (ROOT / "README.md").read_text(encoding="utf-8")
+# The band levels in rising order, and the health checks, as the README names them.
+LEVEL_ORDER = re.search(r"Levels are\s+`(\w+)`, `(\w+)`, `(\w+)` for bands", README).groups()
+_HEALTH = README[README.index("| key | default | check |"):]
+HEALTH_CHECKS = {name for row in _HEALTH[:_HEALTH.index("\n\n")].splitlines()[2:]
+                 for name in re.findall(r"`(\w+)`", row.split("|")[3])}
 LEVELS_ROW_FIELDS = {"name", "channel", "level", "value", "limits"}
 
 
@@ -119,8 +126,7 @@ def _numbers(row: list) -> list:
     return out
 
 
-# Shaft frequency = rpm/60, common practice (shared/reference/check-values.md:
-# "Shaft frequency in Hz is rpm/60").
+# Shaft frequency = rpm/60 (common practice).
 SHAFT_HZ = DEMO_RPM / 60.0
 
 DEMO_BANDS = [
@@ -149,24 +155,40 @@ def test_check_prints_each_band(check_output, name, edges, quantity, unit, warni
 
 
 def test_check_prints_the_1x_band_edges_at_nominal_speed(check_output):
+    # 0.8 and 1.2 orders of 1480 rpm / 60 = 24.667 Hz (common practice), by hand.
     lo, hi = _edges(_band_row(check_output, "1x"))
     assert lo == pytest.approx(19.7333, abs=1e-4)
     assert hi == pytest.approx(29.6, abs=1e-4)
 
 
 def test_check_prints_the_spectral_resolution(check_output):
-    # "Bin spacing is fs/N" (shared/reference/check-values.md); one frame is
-    # N/fs seconds; a result comes every hop = N * (1 - overlap) samples.
+    # Line spacing fs/N, a frame N/fs seconds (common practice); a result
+    # every hop = N * (1 - overlap) samples (README, What it measures).
     bin_hz = DEMO_FS / DEMO_SIZE
     frame_s = DEMO_SIZE / DEMO_FS
     hop_s = DEMO_SIZE * (1 - DEMO_OVERLAP) / DEMO_FS
-    assert (bin_hz, frame_s, hop_s) == (1.25, 0.8, 0.4)
+    # The demo's own comments state these; they must stay true.
+    m = re.search(r"^size = \d+ +# ([\d.]+) Hz lines, ([\d.]+) s frames$", DEMO, flags=re.M)
+    assert m and (float(m.group(1)), float(m.group(2))) == (bin_hz, frame_s)
+    m = re.search(r"^overlap = [\d.]+ +# a result every ([\d.]+) s$", DEMO, flags=re.M)
+    assert m and float(m.group(1)) == hop_s
     m = re.search(r"bin width ([\d.]+) Hz", check_output)
     assert m and float(m.group(1)) == pytest.approx(bin_hz)
     m = re.search(r"frame ([\d.]+) s", check_output)
     assert m and float(m.group(1)) == pytest.approx(frame_s)
     m = re.search(r"result every ([\d.]+) s", check_output)
     assert m and float(m.group(1)) == pytest.approx(hop_s)
+
+
+def test_check_warns_of_a_search_range_wider_than_an_octave(tmp_path, check_output):
+    # An octave is 2:1 in frequency (common practice); 15..45 Hz holds 1x and
+    # 2x of the demo's 24.7 Hz, which only the harmonic guard tells apart.
+    path = demo_copy(tmp_path, (r"search_hz = .*", "search_hz = [15.0, 45.0]"))
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 0
+    warning = [line for line in result.stdout.splitlines() if "warning: search_hz" in line]
+    assert len(warning) == 1 and "15..45 Hz" in warning[0] and "3:1" in warning[0], result.stdout
+    assert "warning: search_hz" not in check_output  # the demo's 20..30 Hz is within an octave
 
 
 def test_check_writes_nothing_to_stderr_on_a_good_config():
@@ -279,6 +301,10 @@ def test_summary_fields_as_spec_section_4(run_60s):
     for s in summaries:
         assert set(s) == SUMMARY_FIELDS
         assert isinstance(s["speed_hz"], float)
+        # The demo tracks its speed: read at the middle of the result's
+        # samples (README, What it measures), half a span before stream_s.
+        span_s = (DEMO_SIZE + (DEMO_AVERAGES - 1) * DEMO_SIZE * (1 - DEMO_OVERLAP) - 1) / DEMO_FS
+        assert s["speed_s"] == pytest.approx(s["stream_s"] - span_s / 2, abs=1e-6)
         assert set(s["channels"]) == {"x", "y"}
         for channel in s["channels"].values():
             assert set(channel) == SUMMARY_CHANNEL_FIELDS
@@ -301,26 +327,39 @@ def test_events_within_60_s_with_every_field(run_60s):
     band_events = [e for e in events if e["kind"] == "band"]
     assert band_events, "the demo's growing imbalance should raise a level within 60 s"
     assert band_events[0]["stream_s"] <= 60.0
+    held = {}
     for e in events:
         assert set(e) == EVENT_FIELDS
         assert e["kind"] in ("band", "health")
         assert e["level"] != e["previous"]
         if e["kind"] == "health":  # e.g. stale, should the machine running the test stall
-            assert e["level"] in ("normal", "fault") and e["previous"] in ("normal", "fault")
+            assert {e["level"], e["previous"]} == {"normal", "fault"}
+            assert e["name"] in HEALTH_CHECKS
             assert e["limits"] == {"warning": None, "alarm": None}
             continue
-        assert e["name"] in ("overall", "1x", "2x", "high")
-        assert e["channel"] in ("x", "y")
-        assert e["level"] in ("normal", "warning", "alarm") and e["previous"] in ("normal", "warning", "alarm")
-        assert e["quantity"] in ("acceleration", "velocity", "displacement")
-        assert e["unit"] == ("g" if e["quantity"] == "acceleration" else "mm/s")
+        # Each band event against the demo's own TOML: its band, channel,
+        # quantity, unit and limits as written there.
+        band = next(b for b in DEMO_TOML["band"] if b["name"] == e["name"])
+        assert e["channel"] in band.get("channels", [band["channel"]] if "channel" in band else ["x", "y"])
+        assert e["quantity"] == band["quantity"]
+        assert e["unit"] == ("g" if band["quantity"] == "acceleration" else "mm/s")
+        limits = LEVEL_ORDER[1:]
         assert set(e["limits"]) == LIMITS_FIELDS
-        for field in ("value", "speed_hz", "dominant_hz"):
-            assert isinstance(e[field], float), (field, e)
-        for field in LIMITS_FIELDS:
-            assert isinstance(e["limits"][field], float), (field, e)
-        if e["level"] != "normal":
-            assert e["value"] >= e["limits"][e["level"]]  # raised: at or above its limit
+        assert [e["limits"][name] for name in limits] == [band.get(name) for name in limits]
+        # Levels chain per band: each event starts where the last one ended.
+        key = (e["name"], e["channel"])
+        assert e["previous"] == held.get(key, "normal"), e
+        held[key] = e["level"]
+        # README, What is published: raised at or above the limit; lowered
+        # below limit * (1 - hysteresis).
+        if LEVEL_ORDER.index(e["level"]) > LEVEL_ORDER.index(e["previous"]):
+            assert e["value"] >= e["limits"][e["level"]]
+        else:
+            assert e["value"] < e["limits"][e["previous"]] * (1 - band.get("hysteresis", 0.1))
+        # The demo's speed is tracked in search_hz; 1x is its strongest line.
+        low, high = DEMO_TOML["speed"]["search_hz"]
+        assert low < e["speed_hz"] < high
+        assert e["dominant_hz"] == pytest.approx(e["speed_hz"], abs=DEMO_FS / DEMO_SIZE)
     # Ids count up by one from 1, over every kind of event.
     assert [e["id"] for e in events] == list(range(1, len(events) + 1))
 
@@ -453,7 +492,12 @@ def test_version():
 def test_console_script_version():
     script = Path(sys.executable).parent / ("bandwatch.exe" if sys.platform == "win32" else "bandwatch")
     if not script.exists():
-        pytest.skip(f"{script} is not installed (pip install -e . makes it)")
+        # The README's test command installs the package, script included:
+        # under CI a missing script is a failure, never a skip.
+        message = f"{script} is not installed (pip install -e . makes it)"
+        if IN_CI:
+            pytest.fail(message)
+        pytest.skip(message)
     result = subprocess.run([str(script), "--version"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True, timeout=30)
     assert result.returncode == 0

@@ -221,7 +221,7 @@ def free_port() -> int:
 
 def test_lost_samples_are_noted_not_filled(tmp_path):
     # A sensor dials in over TCP and skips one frame's sequence number: the
-    # receiver counts that frame's samples as lost (spec section 2).
+    # receiver counts that frame's samples as lost (README, The sensor wire format).
     port = free_port()
     config = write_config(tmp_path, f"""
 [node]

@@ -1,7 +1,7 @@
 """`bandwatch replay`, run for real in subprocesses on real files.
 
 Held against: the pipeline run directly on the simulator (the live path),
-scipy.signal.welch with the level rule of spec section 4 applied step by step
+scipy.signal.welch with the level rule (README, What is published) applied step by step
 on invented scenario recordings, scipy.io.wavfile and the standard library's
 wave module for the files, and numpy for the trend history.
 """
@@ -36,7 +36,7 @@ from monitor.acquire.sources import open_source
 from monitor.acquire.sources.memory import ArraySource
 
 ROOT = Path(__file__).resolve().parents[2]
-# The event payload's fields, spec section 4.
+# The event payload's fields (README, What is published).
 EVENT_FIELDS = {"node", "time", "stream_s", "id", "kind", "name", "channel", "level", "previous", "value",
                 "limits", "unit", "quantity", "speed_hz", "dominant_hz"}
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
@@ -347,7 +347,7 @@ def welch_results(x, size=1024, hop=256, averages=3, lo=40.0, hi=60.0):
 
 
 def expected_events(times, values, limits=(1.0, 3.0), hysteresis=0.2, delay=1.0):
-    """The level rule of spec section 4, applied step by step: raised after
+    """The level rule (README, What is published), applied step by step: raised after
     `delay` s at or above a limit, lowered after `delay` s below
     limit * (1 - hysteresis)."""
     level, out = 0, []

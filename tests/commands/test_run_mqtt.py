@@ -60,7 +60,7 @@ def test_run_publishes_status_summaries_events_and_levels(tmp_path):
         assert len(stamps) in (3, 4)
         assert all(m.qos == 0 for m in sub.on("plant/demo-fan/summary"))
         assert sub.on("plant/demo-fan/levels")
-        # Ids survive the restart (spec section 4): the next run goes on counting.
+        # Ids survive the restart (README, What is published): the next run goes on counting.
         second = run(path)
         assert second.returncode == 0, second.stderr
         wait_for(lambda: len(sub.on("plant/demo-fan/event")) >= 2 * len(ids) or None, 10)

@@ -1,5 +1,5 @@
 """`bandwatch view`: the pure renderer on made-up snapshots, then the real
-command, piped and on a real pseudo-terminal (spec section 1)."""
+command, piped and on a real pseudo-terminal (README, Live view)."""
 
 import fcntl
 import math
@@ -292,7 +292,7 @@ def test_view_piped_writes_plain_lines_and_shows_the_fault_growing(tmp_path):
     # The demo's 1x grows by sim_growth g peak per minute. The last result
     # averages frames centred about 29 s: peak a = h1 + growth * 29 / 60 g.
     # As velocity at f = rpm / 60 (common practice): v = a * g_n / (2 pi f)
-    # (check-values.md), RMS = peak / sqrt(2); g_n = 9.80665 m/s2 (ISO 80000-3).
+    # (analytic), RMS = peak / sqrt(2); g_n = 9.80665 m/s2 (ISO 80000-3).
     src = DEMO_TOML["source"]
     a = src["sim_harmonics"][0] + src["sim_growth"] * 29.0 / 60.0
     f = DEMO_TOML["speed"]["rpm"] / 60.0

@@ -12,6 +12,7 @@ from monitor.deliver.event_ids import EventIds
 
 
 def test_ids_continue_after_a_restart(tmp_path):
+    # README, What is published: ids increase by one and survive restarts.
     ids = EventIds(str(tmp_path))
     assert [ids.take() for _ in range(3)] == [1, 2, 3]
     again = EventIds(str(tmp_path))
@@ -19,6 +20,7 @@ def test_ids_continue_after_a_restart(tmp_path):
 
 
 def test_in_memory_ids_start_at_one():
+    # README, What is published: on stdout ids count from 1 in each run.
     ids = EventIds()
     assert ids.take() == 1 and ids.take() == 2
 

@@ -71,9 +71,17 @@ def test_watchdog_for_another_pid_is_ignored():
 
 
 def test_without_systemd_nothing_is_sent():
-    n = Notifier({})
+    # sd_notify(3): without $NOTIFY_SOCKET there is no one to tell. Every
+    # call, the watchdog's too, must neither open a socket nor fail.
+    before = set(os.listdir("/proc/self/fd"))
+    n = Notifier({"WATCHDOG_USEC": "1000"}, clock=lambda: 1e9)
     assert not n.enabled
-    n.ready("x")  # must not raise
+    n.ready("x")
+    n.status("y")
+    n.watchdog()
+    n.stopping()
+    assert n._sock is None
+    assert set(os.listdir("/proc/self/fd")) == before
 
 
 def test_run_reports_ready_watchdog_status_and_stopping(tmp_path):
