@@ -250,7 +250,8 @@ class Monitor:
                     if self.source.ended:
                         break
                     quiet = self.clock() - self._last_sample_at
-                    self._emit_health(self.health.on_quiet(quiet, self._stream_s))
+                    self._emit_health(self.health.on_quiet(quiet, self._stream_s)
+                                      + self._on_delivery(self._stream_s))
                     continue
                 self._last_sample_at = self.clock()
                 self.feed(block)
@@ -331,7 +332,7 @@ class Monitor:
             self.notifier.ready(self.status_line(result))
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
-        changed |= self._emit_health(self.health.on_delivery(self.sink.dropped, self.sink.queued, stream_s), result)
+        changed |= self._emit_health(self._on_delivery(stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
@@ -339,6 +340,10 @@ class Monitor:
             self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+
+    def _on_delivery(self, t: float) -> List[Change]:
+        sink = self.sink
+        return self.health.on_delivery(sink.dropped, sink.queued, t, sink.held, sink.storage_fault())
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)
