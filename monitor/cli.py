@@ -137,8 +137,9 @@ def _run(config: Config) -> int:
         return EXIT_FAILURE
     ids = None
     try:
-        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
         sink = open_sink(config)
+        # Above every id the queue has stored: a lost id file cannot make ids repeat.
+        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None, floor=sink.last_event_id)
         state_dir = config.mqtt.queue_dir if config.mqtt else None
         monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier(), state_dir=state_dir)
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,

@@ -99,14 +99,44 @@ def test_second_user_of_a_directory_is_refused(tmp_path):
     EventQueue(str(tmp_path), 10).close()  # free again after close
 
 
-def test_unreadable_database_is_moved_aside(tmp_path):
+def test_unreadable_database_is_moved_aside(tmp_path, caplog):
     (tmp_path / FILENAME).write_bytes(b"this is not an sqlite database" * 100)
     with EventQueue(str(tmp_path), 10) as q:
         assert q.count == 0
+        assert q.damage is not None and q.damage.held is None and q.damage.recovered == 0
         q.put("t", payload(1), 1)
         assert q.count == 1
     aside = [p.name for p in tmp_path.iterdir() if ".corrupt-" in p.name]
     assert aside, "the damaged file should be kept for inspection"
+    assert "an unknown number of events" in caplog.text
+
+
+def test_an_empty_database_file_is_damage_not_a_fresh_queue(tmp_path, caplog):
+    with EventQueue(str(tmp_path), 10) as q:
+        q.put("t", payload(1), 1)
+    (tmp_path / FILENAME).write_bytes(b"")  # truncated behind our back
+    with EventQueue(str(tmp_path), 10) as q:
+        assert q.damage is not None and "empty" in q.damage.reason
+    assert "empty (0 bytes)" in caplog.text
+
+
+def test_a_damaged_page_costs_only_its_rows_and_they_are_counted(tmp_path, caplog):
+    with EventQueue(str(tmp_path), 10_000) as q:
+        for i in range(1, 301):
+            q.put("t", payload(i) + b" " * 500, 1, event_id=i)
+        q.remove_many(r.id for r in q.peek(20))  # delivered: ids 21..300 wait
+    with open(tmp_path / FILENAME, "r+b") as f:
+        f.seek(4096 * 20)  # one page in the middle of the table
+        f.write(bytes(range(256)) * 16)
+    with EventQueue(str(tmp_path), 10_000) as q:
+        damage = q.damage
+        assert damage is not None and damage.held == 280
+        assert 250 < damage.recovered < 280
+        assert q.count == damage.recovered and q.dropped == 280 - damage.recovered
+        got = [event_id_of(r.payload) for r in q.peek(1000)]
+        assert got == sorted(got) and got[0] == 21 and got[-1] == 300  # both sides of the damage
+        assert q.last_event_id == 300
+    assert f"{280 - damage.recovered} lost" in caplog.text
 
 
 def test_closed_queue_refuses_with_delivery_error(tmp_path):

@@ -14,7 +14,9 @@ import subprocess
 import sys
 import time
 
-from conftest import fill, small_disk
+import pytest
+
+from conftest import fill, remount, small_disk
 from mqtt_broker import Broker, Collector, wait_for
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -146,3 +148,101 @@ def test_the_loss_notice_outlasts_the_queue_bound_and_carries_the_count(tmp_path
     lost = total - len(got)
     print(f"queue bound: {len(got)} of {total} delivered; queue changes {changes}")
     assert lost > 0 and changes[-1] == ("normal", float(lost)), (changes, lost)
+
+
+def run_once(path):
+    return subprocess.run([sys.executable, "-m", "monitor", "run", "-c", path], cwd=ROOT,
+                          capture_output=True, text=True, timeout=60)
+
+
+def by_id(sub):
+    """Every distinct payload seen per id: a resend is the same bytes, a reused id is not."""
+    out = {}
+    for m in sub.on(f"plant/{NODE}/event"):
+        out.setdefault(json.loads(m.payload)["id"], set()).add(m.payload)
+    return out
+
+
+def test_ids_never_repeat_after_the_id_file_is_deleted_or_rolled_back(tmp_path):
+    broker = Broker(str(tmp_path / "broker"))  # away at first: the queue holds the ids
+    queue_dir = str(tmp_path / "state")
+    path = flapping(tmp_path, broker.port, queue_dir, seconds=4.0, realtime=False)
+    assert run_once(path).returncode == 0
+    held = last_id(queue_dir)
+    os.remove(os.path.join(queue_dir, "event-id"))
+    deleted = run_once(path)
+    assert deleted.returncode == 0 and "is missing; repaired" in deleted.stderr
+    assert last_id(queue_dir) > held
+    with open(os.path.join(queue_dir, "event-id"), "w") as fh:
+        fh.write(f"{5:020d}\n")  # rolled back, as a restored backup would
+    with broker, Collector(broker, f"plant/{NODE}/event") as sub:
+        rolled = run_once(path)
+        assert rolled.returncode == 0 and "holds 5, below id" in rolled.stderr
+        total = last_id(queue_dir)
+        assert wait_for(lambda: len(by_id(sub)) >= total, 10)
+    seen = by_id(sub)
+    assert sorted(seen) == list(range(1, total + 1))
+    assert all(len(contents) == 1 for contents in seen.values()), "an id arrived with two contents"
+
+
+def test_a_damaged_id_file_is_repaired_and_measuring_starts(tmp_path):
+    queue_dir = str(tmp_path / "state")
+    path = flapping(tmp_path, 1, queue_dir, seconds=2.0, realtime=False)  # no broker: the queue holds all
+    assert run_once(path).returncode == 0
+    # "\u0663" is ARABIC-INDIC DIGIT THREE: a digit to Python's int(), not to the file's format.
+    for content in (b"abc", b"-5", b"", "\u0663".encode()):
+        before = last_id(queue_dir)
+        with open(os.path.join(queue_dir, "event-id"), "wb") as fh:
+            fh.write(content)
+        again = run_once(path)
+        assert again.returncode == 0, again.stderr
+        assert "not a number; repaired" in again.stderr and "Traceback" not in again.stderr
+        assert last_id(queue_dir) > before + 10  # measured, and went on counting
+
+
+def test_a_read_only_state_directory_measures_and_delivers_with_a_queue_fault(tmp_path):
+    with small_disk(str(tmp_path / "disk")) as disk:
+        queue_dir = os.path.join(disk, "state")
+        with Broker(str(tmp_path / "broker")) as broker, Collector(broker, f"plant/{NODE}/event") as sub:
+            path = flapping(tmp_path, broker.port, queue_dir, seconds=2.0, realtime=False)
+            assert run_once(path).returncode == 0
+            before = last_id(queue_dir)
+            remount(disk, "ro")
+            try:
+                ro = run_once(flapping(tmp_path, broker.port, queue_dir, seconds=4.0))
+            finally:
+                remount(disk, "rw")
+            assert ro.returncode == 0, ro.stderr
+            assert "Read-only file system" in ro.stderr
+            got = wait_for(lambda: [p for p in events(sub) if p["id"] > before and p["kind"] == "band"], 10)
+        assert len(got) > 20  # measured and delivered from memory
+        assert [c[0] for c in queue_changes(events(sub))][:1] == ["fault"]
+
+
+@pytest.mark.parametrize("damage", ["empty", "page"])
+def test_a_damaged_queue_file_is_reported_as_a_queue_fault(tmp_path, damage):
+    broker = Broker(str(tmp_path / "broker"))
+    queue_dir = str(tmp_path / "state")
+    path = flapping(tmp_path, broker.port, queue_dir, seconds=8.0, realtime=False)
+    assert run_once(path).returncode == 0  # the broker is away: every event waits
+    queued = last_id(queue_dir)
+    db = os.path.join(queue_dir, "events.sqlite")
+    with open(db, "r+b") as f:
+        if damage == "empty":
+            f.truncate(0)
+        else:
+            f.seek(4096 * (os.path.getsize(db) // 4096 // 2))
+            f.write(bytes(range(256)) * 16)
+    with broker, Collector(broker, f"plant/{NODE}/event") as sub:
+        back = run_once(flapping(tmp_path, broker.port, queue_dir, seconds=2.0))
+        assert back.returncode == 0, back.stderr
+        assert "is damaged" in back.stderr
+        wait_for(lambda: "normal" in [c[0] for c in queue_changes(events(sub))], 10)
+    changes = queue_changes(events(sub))
+    assert changes[0][0] == "fault"
+    assert any(name.startswith("events.sqlite.corrupt-") for name in os.listdir(queue_dir))
+    if damage == "page":
+        recovered = [i for i in distinct(events(sub)) if i <= queued]
+        lost = queued - len(recovered)
+        assert 0 < lost < queued // 2
+        assert ("normal", float(lost)) in changes, (changes, lost)

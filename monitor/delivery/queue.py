@@ -109,7 +109,7 @@ class Damage(NamedTuple):
 
     aside: str  # where the damaged file was moved
     reason: str
-    held: Optional[int]  # events it held, None when SQLite could not count them
+    held: Optional[int]  # events it held (exact, or estimated from row ids), None when unknown
     recovered: int  # events carried into the fresh file
 
 
@@ -287,7 +287,7 @@ class EventQueue:
         for suffix in ("-wal", "-shm"):
             if os.path.exists(self.path + suffix):
                 os.replace(self.path + suffix, aside + suffix)
-        held, rows = _salvage(aside)
+        held, exact, rows, last_event_id = _salvage(aside)
         lost = 0 if held is None else max(0, held - len(rows))
         db = self._connect(self.path)
         db.execute("BEGIN IMMEDIATE")
@@ -297,15 +297,19 @@ class EventQueue:
                 rows,
             )
             _count_lost(db, lost)  # counted in `dropped` when the caller reads it back
+            db.execute("INSERT OR REPLACE INTO meta (key, value) VALUES ('last_event_id', ?)", (last_event_id,))
             db.execute("COMMIT")
         except BaseException:
             _roll_back(db)
             db.close()
             raise
         self.damage = Damage(aside, str(err), held, len(rows))
-        lost = "an unknown number of events" if held is None else f"{held} event(s)"
-        log.error("event queue %s is damaged (%s); moved to %s: it held %s, %d recovered into a fresh queue",
-                  self.path, err, aside, lost, len(rows))
+        if held is None:
+            count = "an unknown number of events"
+        else:
+            count = f"{held} event(s)" if exact else f"about {held} event(s) by the gaps in its row ids"
+        log.error("event queue %s is damaged (%s); moved to %s: it held %s, %d recovered into a fresh "
+                  "queue, %d lost", self.path, err, aside, count, len(rows), lost)
         return db
 
     # -- disk state ----------------------------------------------------------
@@ -616,17 +620,32 @@ def _roll_back(db: sqlite3.Connection) -> None:
             pass
 
 
-def _salvage(path: str) -> Tuple[Optional[int], List[Tuple[Any, ...]]]:
-    """What SQLite can still read from a damaged queue file: how many events
-    it held (None when it cannot count them) and the rows it can read, oldest
-    first, ready to insert. Reads forwards until the first damaged page, then
-    backwards from the end, so rows on both sides of the damage come back."""
+class _Salvage(NamedTuple):
+    held: Optional[int]  # events the file held; None when nothing tells
+    exact: bool  # counted, rather than estimated from the row ids
+    rows: List[Tuple[Any, ...]]  # readable rows, oldest first, ready to insert
+    last_event_id: int  # the highest event id it had stored, where readable
+
+
+def _salvage(path: str) -> _Salvage:
+    """What SQLite can still read from a damaged queue file.
+
+    Reads forwards until the first damaged page, then backwards from the end,
+    so rows on both sides of the damage come back. When SQLite cannot count
+    the rows, the number is estimated from the row ids: the queue holds a
+    run of consecutive ids (taken from its head, appended at its tail), so the
+    ids missing between the first row read and the last id given out are the
+    rows lost (give or take the few confirmed out of order at the head)."""
     try:
         db = sqlite3.connect(path, isolation_level=None)
     except sqlite3.Error:
-        return None, []
+        return _Salvage(None, False, [], 0)
     rows: Dict[int, Tuple[Any, ...]] = {}
     try:
+        try:
+            last_event_id = _meta(db, "last_event_id")
+        except sqlite3.Error:
+            last_event_id = 0
         for order in ("ASC", "DESC"):
             try:
                 cursor = db.execute(f"SELECT * FROM events ORDER BY id {order}")
@@ -641,10 +660,20 @@ def _salvage(path: str) -> Tuple[Optional[int], List[Tuple[Any, ...]]]:
                     )
             except (sqlite3.Error, KeyError, TypeError, ValueError):
                 continue
+        ordered = [rows[k] for k in sorted(rows)]
+        last_event_id = max([last_event_id] + [r[4] for r in ordered if r[4] is not None])
         try:
-            held: Optional[int] = max(int(db.execute("SELECT COUNT(*) FROM events").fetchone()[0]), len(rows))
+            return _Salvage(int(db.execute("SELECT COUNT(*) FROM events").fetchone()[0]), True, ordered,
+                            last_event_id)
         except sqlite3.Error:
-            held = None
+            pass
+        try:
+            last = db.execute("SELECT seq FROM sqlite_sequence WHERE name = 'events'").fetchone()
+        except sqlite3.Error:
+            last = None
     finally:
         db.close()
-    return held, [rows[k] for k in sorted(rows)]
+    if not rows:
+        return _Salvage(None, False, [], last_event_id)
+    top = max(max(rows), int(last[0]) if last else 0)
+    return _Salvage(top - min(rows) + 1, False, ordered, last_event_id)
