@@ -250,6 +250,8 @@ class Monitor:
                     if self.source.ended:
                         break
                     quiet = self.clock() - self._last_sample_at
+                    if self.capture is not None and quiet >= self.config.health.stale:
+                        self.capture.cut(f"no samples for {quiet:.3g} s")
                     self._emit_health(self.health.on_quiet(quiet, self._stream_s)
                                       + self._on_delivery(self._stream_s))
                     continue
@@ -304,13 +306,15 @@ class Monitor:
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
         ))
         samples = block.samples
-        if self.capture is not None:
-            self.capture.feed(samples * self.scale, self._samples + n)
         start = 0
         total = samples.shape[0]
         while start < total:
             take = min(total - start, self._pending)
             self.ring.write(samples[start : start + take], self._ring_scale)
+            if self.capture is not None:
+                # Piece by piece, as scaled in the ring: a trigger in the
+                # frame below then falls exactly at the capture's newest sample.
+                self.capture.feed(self.ring.latest(take), self._samples + take)
             start += take
             self._samples += take
             self._pending -= take

@@ -1,16 +1,22 @@
-"""Raw capture around an alarm: the file holds exactly the samples around its trigger."""
+"""Raw capture around an alarm: the file holds exactly the samples around its
+trigger, and a link drop (a real TCP socket reset) writes it at once."""
 
 import os
+import threading
+import time
 
 import numpy as np
 import pytest
 import scipy.io.wavfile
 
 from monitor.config import parse
+from monitor.decoders.frame import FLOAT32, encode_frame
 from monitor.pipeline import Monitor
 from monitor.recording import open_recording
+from monitor.sources import open_source
 from monitor.sources.memory import ArraySource
 from test_pipeline import BASE, FS, ListSink
+from test_source_tcp import listener, reset, wait_until
 
 # scipy warns about our metadata chunk, which plain readers skip by design.
 pytestmark = pytest.mark.filterwarnings("ignore::scipy.io.wavfile.WavFileWarning")
@@ -86,3 +92,99 @@ def test_a_capture_pending_at_shutdown_is_written_with_what_arrived(tmp_path):
     _, data = scipy.io.wavfile.read(tmp_path / "captures" / event["capture"])
     trigger = int(round(event["stream_s"] * FS)) + 1
     assert np.array_equal(data, x[trigger - int(4 * FS) :].astype(np.float32))
+
+
+TCP = """
+[node]
+name = "rig-1"
+[source]
+kind = "tcp-client"
+host = "127.0.0.1"
+port = {port}
+format = "frame"
+sample_rate = 2048.0
+channels = ["x", "y"]
+unit = "m/s2"
+[spectrum]
+size = 1024
+overlap = 0.75
+averages = 3
+[[band]]
+name = "tone"
+channel = "x"
+hz = [40.0, 60.0]
+quantity = "acceleration"
+warning = 1.0
+alarm = 3.0
+delay = 0.0
+[capture]
+seconds = 4.0
+after = 2.0
+dir = "{dir}"
+"""
+
+
+def send(peer, x, first, last, seq):
+    """Samples first..last as float32 frames of 256, at about 12 times real time."""
+    for at in range(first, last, 256):
+        peer.sendall(encode_frame(x[at : min(at + 256, last)], seq=seq, sample_type=FLOAT32))
+        seq += 1
+        time.sleep(0.01)
+    return seq
+
+
+@pytest.mark.parametrize("comes_back", [True, False])
+def test_a_link_drop_mid_capture_writes_it_at_once_around_its_trigger(tmp_path, comes_back):
+    # An invented machine over a real TCP link: the tone steps up at 10 s,
+    # the link drops half a second later, before the capture's 2 s `after`.
+    x = scenario(14.0, [(10.0, 2.0)])
+    drop = int(10.5 * FS)
+    server = listener()
+    config = parse(TCP.format(port=server.getsockname()[1], dir=tmp_path / "captures"))
+    sink = ListSink()
+    monitor = Monitor(config, open_source(config.source), sink)
+    monitor.source.open()
+    stop = threading.Event()
+    runner = threading.Thread(target=monitor.run, args=(stop,))
+    runner.start()
+    try:
+        peer, _ = server.accept()
+        seq = send(peer, x, 0, drop, 0)
+        assert wait_until(lambda: monitor._samples == drop and sink.of("event"), 10)
+        reset(peer)
+        if comes_back:
+            peer, _ = server.accept()  # the source dials again; 20 s of frames never came
+            send(peer, x, drop, drop + int(1.0 * FS), seq + 160)
+        else:
+            server.close()  # nothing more: the source goes stale after [health] stale = 2 s
+        event = [e for e in sink.of("event") if e["kind"] == "band"][0]
+        path = tmp_path / "captures" / event["capture"]
+        # Written on time: while the monitor still runs, not at shutdown.
+        assert wait_until(path.exists, 5), "the capture waited past the link drop"
+        assert runner.is_alive()
+    finally:
+        stop.set()
+        runner.join(10)
+        monitor.source.close()
+        server.close()
+    _, data = scipy.io.wavfile.read(path)
+    trigger = int(round(event["stream_s"] * FS)) + 1
+    # Exactly the samples sent around the trigger, up to the drop (float32 frames round-trip exactly).
+    assert np.array_equal(data, x[trigger - int(4 * FS) : drop].astype(np.float32))
+    meta = open_recording(str(path)).metadata["capture"]
+    assert meta["trigger_s"] == pytest.approx(4.0)
+    assert meta["after_s"] == pytest.approx((drop - trigger) / FS)
+    assert meta["cut"].startswith("a gap" if comes_back else "no samples for")
+
+
+def test_a_capture_with_no_after_is_written_at_its_trigger(tmp_path):
+    text = CONFIG.replace("after = 2.0", "after = 0.0").format(dir=tmp_path / "captures")
+    config = parse(text)
+    x = scenario(14.0, [(10.0, 2.0)])
+    sink = ListSink()
+    Monitor(config, ArraySource(config.source, x, block=300), sink).run()
+    event = [e for e in sink.of("event") if e["kind"] == "band"][0]
+    _, data = scipy.io.wavfile.read(tmp_path / "captures" / event["capture"])
+    trigger = int(round(event["stream_s"] * FS)) + 1
+    assert np.array_equal(data, x[trigger - int(4 * FS) : trigger].astype(np.float32))
+    assert open_recording(str(tmp_path / "captures" / event["capture"])).metadata["capture"]["cut"] is None
