@@ -94,34 +94,9 @@ def test_a_capture_pending_at_shutdown_is_written_with_what_arrived(tmp_path):
     assert np.array_equal(data, x[trigger - int(4 * FS) :].astype(np.float32))
 
 
-TCP = """
-[node]
-name = "rig-1"
-[source]
-kind = "tcp-client"
-host = "127.0.0.1"
-port = {port}
-format = "frame"
-sample_rate = 2048.0
-channels = ["x", "y"]
-unit = "m/s2"
-[spectrum]
-size = 1024
-overlap = 0.75
-averages = 3
-[[band]]
-name = "tone"
-channel = "x"
-hz = [40.0, 60.0]
-quantity = "acceleration"
-warning = 1.0
-alarm = 3.0
-delay = 0.0
-[capture]
-seconds = 4.0
-after = 2.0
-dir = "{dir}"
-"""
+# The same machine over a real TCP link.
+TCP = CONFIG.replace('kind = "simulator"', 'kind = "tcp-client"\nhost = "127.0.0.1"\nport = {port}\nformat = "frame"'
+                     ).replace("realtime = false\n", "")
 
 
 def send(peer, x, first, last, seq):
