@@ -761,21 +761,13 @@ def _read_health(t: _Table) -> HealthConfig:
     return health
 
 
-_TOPIC_FORBIDDEN = re.compile(r"[+#\x00]")
-
-
 def _read_mqtt(t: _Table) -> MqttConfig:
+    from .topics import RULE, prefix_problem
+
     prefix = t.get_str("prefix", "bandwatch")
-    expected = "a topic prefix without +, # or NUL, not starting or ending with /, at most 1024 bytes"
-    if (
-        not prefix
-        or _TOPIC_FORBIDDEN.search(prefix)
-        or prefix.startswith("/")
-        or prefix.endswith("/")
-        or "//" in prefix
-        or len(prefix.encode("utf-8")) > 1024
-    ):
-        raise t.bad("prefix", prefix, expected)
+    problem = prefix_problem(prefix)
+    if problem:
+        raise t.fail("prefix", f"{_show(prefix)} {problem}; expected {RULE}")
     cfg = MqttConfig(
         host=t.get_str("host", "localhost"),
         port=t.get_int("port", 1883, 1, 65535),
