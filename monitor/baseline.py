@@ -24,7 +24,7 @@ from .config import BandConfig
 log = logging.getLogger("bandwatch.baseline")
 
 FILE = "baselines.json"
-_MAX_VALUES = 100_000  # beyond this, every other value is dropped (still a fair median)
+MAX_VALUES = 100_000  # beyond this, every other value is dropped (still a fair median)
 
 
 def key(band: str, channel: str) -> str:
@@ -122,7 +122,7 @@ class Baseline:
         if self._start is None:
             self._start = t
         if self._count == len(self._values):
-            if self._count >= _MAX_VALUES:
+            if self._count >= MAX_VALUES:
                 self._values[: self._count // 2] = self._values[: self._count : 2]
                 self._count //= 2
             else:

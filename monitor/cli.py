@@ -179,6 +179,7 @@ def _reset_baseline(config: Config, names: List[str]) -> int:
 
 def print_check(config: Config, out: TextIO) -> None:
     """The resolved config, as `bandwatch check` prints it."""
+    from . import memory
     from .sources import available
     from .windows import Window
 
@@ -237,6 +238,7 @@ def print_check(config: Config, out: TextIO) -> None:
         for r in rows:
             w("  " + "  ".join(cell.ljust(widths[i]) for i, cell in enumerate(r)).rstrip() + "\n")
     w(f"health: stale after {config.health.stale:g} s without samples\n")
+    w(memory.summary(config))
     if config.mqtt is None:
         w("output: JSON lines on stdout (no [mqtt] section)\n")
     else:

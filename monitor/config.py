@@ -39,6 +39,7 @@ SEVERITY_ZONES = {
     "group2-flexible": (4.5, 7.1),
 }
 MAX_SAMPLE_RATE = 1_000_000.0
+MEMORY_MB = 256  # default [node] memory_mb: a 512 MB board, with room for the system and a broker
 
 # Which [source] keys each kind takes, beyond kind, sample_rate, channels, unit.
 _KIND_KEYS = {
@@ -225,6 +226,7 @@ class Config:
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
+    memory_mb: int = MEMORY_MB  # the budget `check` holds the buffers to (monitor.memory)
 
 
 def quantity_unit(quantity: str, source_unit: str) -> str:
@@ -450,10 +452,11 @@ class _Table:
 # Sections
 
 
-def _read_node(t: _Table) -> str:
+def _read_node(t: _Table) -> Tuple[str, int]:
     name = t.get_name("name")
+    memory_mb = t.get_int("memory_mb", MEMORY_MB, 32, 1 << 20)
     t.finish()
-    return name
+    return name, memory_mb
 
 
 def _read_simulator(t: _Table, speed_rpm: Optional[float]) -> SimulatorConfig:
@@ -835,7 +838,7 @@ def parse(text: str, file: str = "<config>") -> Config:
                               locator.find(key, None, None) or locator.find(key, 1, None)
                               or locator.find("", None, key))
 
-    node = _read_node(section("node", True))
+    node, memory_mb = _read_node(section("node", True))
     speed_t = section("speed", False)
     speed_rpm = speed_t.data.get("rpm") if isinstance(speed_t.data.get("rpm"), (int, float)) else None
     source = _read_source(section("source", True), speed_rpm)
@@ -879,7 +882,7 @@ def parse(text: str, file: str = "<config>") -> Config:
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
 
-    return Config(
+    config = Config(
         path=file,
         node=node,
         source=source,
@@ -893,7 +896,13 @@ def parse(text: str, file: str = "<config>") -> Config:
         capture=capture,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
+        memory_mb=memory_mb,
     )
+    if config.source.sample_rate > 0:  # a file source's rate comes with the recording: checked then
+        from .memory import check
+
+        check(config, line=locator.find("node", None, "memory_mb"))
+    return config
 
 
 def load(path: str) -> Config:

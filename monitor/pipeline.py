@@ -17,7 +17,7 @@ from typing import Callable, Dict, List, Optional, Tuple
 
 import numpy as np
 
-from . import __version__
+from . import __version__, memory
 from .bands import BandBank, BandValue
 from .baseline import Baseline, BaselineStore
 from .capture import Capture
@@ -112,6 +112,8 @@ class Monitor:
     def _build(self) -> None:
         cfg = self.config
         self.fs = self.source.sample_rate
+        if cfg.source.sample_rate <= 0:  # the rate came with the recording: the budget is checked now
+            memory.check(cfg, self.fs)
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self.capture: Optional[Capture] = None

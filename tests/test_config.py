@@ -291,6 +291,10 @@ CASES = {
     "node-name-not-string": Case(demo(('name = "demo-fan"', "name = 42")), "node.name", "name = 42",
                                  ["42", "a string"]),
     "node-name-missing": Case(demo(('name = "demo-fan"', "")), "node.name", "[node]", ["missing"]),
+    "node-memory-mb-16": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\nmemory_mb = 16')), "node.memory_mb",
+                              "memory_mb", ["got 16", "32"]),
+    "node-memory-over-budget": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\nmemory_mb = 64')),
+                                    "node.memory_mb", "memory_mb", ["needs about 64.7 MiB", "budget of 64 MiB"]),
     "node-unknown-key": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\ncolour = "red"')), "node.colour",
                              "colour", ["unknown key"]),
     # --- [source]
