@@ -19,6 +19,7 @@ from typing import Dict, Optional, Tuple
 
 import numpy as np
 
+from . import private
 from .config import BandConfig
 
 log = logging.getLogger("bandwatch.baseline")
@@ -78,8 +79,8 @@ class BaselineStore:
             return
         tmp = self.path + ".tmp"
         try:
-            os.makedirs(self.directory, exist_ok=True)  # type: ignore[arg-type]
-            with open(tmp, "w", encoding="utf-8") as fh:
+            private.make_dirs(self.directory)  # type: ignore[arg-type]
+            with os.fdopen(private.open_file(tmp, os.O_WRONLY | os.O_TRUNC), "w", encoding="utf-8") as fh:
                 json.dump(self.entries, fh, indent=1, sort_keys=True)
                 fh.flush()
                 os.fsync(fh.fileno())

@@ -25,6 +25,7 @@ from typing import Any, Dict, List, Optional, Sequence
 
 import numpy as np
 
+from . import private
 from .config import CaptureConfig
 from .recording import RecordingWriter
 from .ring import WrapRing
@@ -114,7 +115,8 @@ class Capture:
                              "first_stream_s": round(first / self.fs, 6), "cut": cut,
                              "events": pending.events}}
         try:
-            os.makedirs(self.config.dir, exist_ok=True)
+            private.make_dirs(self.config.dir)
+            private.touch(path)  # 0600 before a sample is in it
             with RecordingWriter(path, self.fs, self.channels, self.unit, start_time=start, extra=extra) as w:
                 w.write(samples)
         except OSError as exc:

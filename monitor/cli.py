@@ -245,3 +245,7 @@ def print_check(config: Config, out: TextIO) -> None:
         m = config.mqtt
         w(f"output: MQTT {m.host}:{m.port}, topics {m.prefix}/{config.node}/..., qos {m.qos}, "
           f"summary every {m.summary_interval:g} s\n")
+        from .delivery.exposure import warnings
+
+        for text in warnings(m):
+            w(f"warning: {text}\n")

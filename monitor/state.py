@@ -19,6 +19,8 @@ import os
 import re
 from typing import Optional
 
+from . import private
+
 log = logging.getLogger("bandwatch.state")
 
 ID_FILE = "event-id"
@@ -84,7 +86,7 @@ class EventIds:
         try:
             fresh = self._fd is None
             if self._fd is None:
-                self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+                self._fd = private.open_file(self.path, os.O_RDWR)
             line = f"{value:020d}\n".encode("ascii")
             os.pwrite(self._fd, line, 0)
             if fresh:

@@ -84,7 +84,7 @@ def test_directory_that_cannot_be_made_is_named_and_events_wait_in_memory(tmp_pa
     blocker.write_text("not a directory")
     target = str(blocker / "queue")
     with EventQueue(target, 10) as q:  # the monitor measures on; nothing is lost yet
-        assert q.error and "Not a directory" in q.error
+        assert q.error and "not a directory" in q.error and str(blocker) in q.error
         assert target in caplog.text
         row = q.put("t", payload(1), 1)
         assert row < 0 and q.held == q.count == 1 and q.dropped == 0

@@ -42,6 +42,7 @@ import paho.mqtt.client as mqtt
 from ..config import MqttConfig
 from ..errors import DeliveryError
 from ..payloads import encode
+from . import exposure
 from .base import TOPICS, Payload, Sink, topic
 from .queue import EventQueue, kept
 
@@ -226,6 +227,8 @@ class MqttSink(Sink):
         password: Optional[str] = None
         if cfg.password_file:
             password = read_password(cfg.password_file)
+        for text in exposure.warnings(cfg):
+            log.warning("%s", text)
 
         # Shared with the callbacks, all under _cond.
         self._cond = threading.Condition(threading.Lock())

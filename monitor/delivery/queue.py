@@ -51,6 +51,7 @@ import threading
 import time
 from typing import Any, Callable, Deque, Dict, Iterable, List, Mapping, NamedTuple, Optional, Set, Tuple, TypeVar
 
+from .. import private
 from ..errors import DeliveryError
 
 try:
@@ -178,7 +179,7 @@ class EventQueue:
     def _open_disk(self) -> None:
         """Directory, lock, database. OSError or sqlite3.Error: not now (the
         caller holds events in memory and retries); DeliveryError: never."""
-        os.makedirs(self.directory, exist_ok=True)
+        private.make_dirs(self.directory)
         if not os.path.isdir(self.directory):
             raise NotADirectoryError(errno.ENOTDIR, "not a directory", self.directory)
         self._take_lock()
@@ -206,7 +207,7 @@ class EventQueue:
         if fcntl is None or self._lock_fd is not None:  # pragma: no cover - not POSIX
             return
         lock_path = os.path.join(self.directory, LOCKNAME)
-        fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
+        fd = private.open_file(lock_path, os.O_RDWR)
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError as err:
@@ -243,6 +244,10 @@ class EventQueue:
             if check != "ok":
                 raise sqlite3.DatabaseError(f"quick_check: {check}")
             self._upgrade(db)
+            # SQLite creates its files by the umask; the log and index files
+            # it makes later copy the database file's mode.
+            for suffix in ("", "-wal", "-shm"):
+                private.narrow(path + suffix)
         except BaseException:
             db.close()
             raise
@@ -284,9 +289,10 @@ class EventQueue:
     def _replace_damaged(self, err: sqlite3.DatabaseError) -> sqlite3.Connection:
         aside = f"{self.path}.corrupt-{time.strftime('%Y%m%dT%H%M%S')}"
         os.replace(self.path, aside)
-        for suffix in ("-wal", "-shm"):
-            if os.path.exists(self.path + suffix):
+        for suffix in ("", "-wal", "-shm"):
+            if suffix and os.path.exists(self.path + suffix):
                 os.replace(self.path + suffix, aside + suffix)
+            private.narrow(aside + suffix)
         held, exact, rows, last_event_id = _salvage(aside)
         lost = 0 if held is None else max(0, held - len(rows))
         db = self._connect(self.path)
