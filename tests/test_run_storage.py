@@ -94,14 +94,14 @@ def test_a_disk_full_for_seconds_loses_no_event_and_raises_the_queue_fault(tmp_p
     with small_disk(str(tmp_path / "disk")) as disk, Broker(str(tmp_path / "broker")) as broker, \
             Collector(broker, f"plant/{NODE}/#") as sub:
         queue_dir = os.path.join(disk, "state")
-        proc = start(flapping(tmp_path, broker.port, queue_dir, seconds=16.0))
+        proc = start(flapping(tmp_path, broker.port, queue_dir, seconds=12.0))
         try:
             assert wait_for(lambda: len(events(sub)) >= 20, 20), "no events before the disk filled"
             # The broker stops acknowledging, so events pile up and the queue
             # must grow, on a disk that has no room left.
             broker.pause()
             filler = fill(disk)
-            time.sleep(5.0)
+            time.sleep(4.0)
             os.remove(filler)
             broker.resume()
             _, err = proc.communicate(timeout=60)
