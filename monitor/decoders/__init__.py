@@ -4,6 +4,8 @@
 ("frame" or "csv"). A decoder is fed whatever bytes arrived and returns the
 sample blocks it could complete; it keeps a bounded tail of partial input
 between calls, resynchronises on garbage and counts what it had to throw away.
+Input that ends every frame or line it holds (a UDP datagram) is fed with
+`whole=True`: nothing of it is kept for the next call.
 
 The binary frame format lives in `frame.py`, the text format in `text.py`.
 """
@@ -45,8 +47,14 @@ class Decoder:
         self.counters: Dict[str, int] = dict.fromkeys(
             ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "mismatched", "nonfinite"), 0
         )
+        # Whether the last `whole` feed ended inside a frame (its partial
+        # frame was dropped).
+        self.truncated = False
 
-    def feed(self, data: bytes) -> List[Decoded]:
+    def feed(self, data: bytes, whole: bool = False) -> List[Decoded]:
+        """Blocks completed by `data`. With `whole`, `data` ends every frame
+        or line in it: a partial one at its end is dropped (frames) or ended
+        there (lines), never joined with the next call's bytes."""
         raise NotImplementedError
 
     def reset(self) -> None:

@@ -60,8 +60,10 @@ class CsvDecoder(Decoder):
         self._tail = b""
         self._skipping = False
 
-    def feed(self, data: bytes) -> List[Decoded]:
+    def feed(self, data: bytes, whole: bool = False) -> List[Decoded]:
         data = bytes(data)
+        if whole and not data.endswith(b"\n"):
+            data += b"\n"  # the end of the datagram ends its last line
         if self._skipping:
             i = data.find(b"\n")
             if i < 0:

@@ -206,11 +206,11 @@ class StreamSource(Source):
                 self._failure = exc
                 self._ready.notify_all()
 
-    def _consume(self, data: bytes, end: bytes = b"") -> None:
-        """Decode a chunk of bytes (and a terminator the link implies, not
-        counted as received) and queue what it completes."""
+    def _consume(self, data: bytes, whole: bool = False) -> None:
+        """Decode a chunk of bytes (`whole`: one that ends every frame or
+        line in it, a datagram) and queue what it completes."""
         self._link["bytes"] += len(data)
-        self._emit_decoded(self._decoder.feed(data + end if end else data))
+        self._emit_decoded(self._decoder.feed(data, whole))
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""
