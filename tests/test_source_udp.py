@@ -125,6 +125,31 @@ def test_a_truncated_frame_is_dropped_without_harming_the_next_datagram(udp):
     assert source.counters()["corrupt_frames"] >= 1
 
 
+def test_a_datagram_of_nested_false_headers_does_not_stall_measuring(udp):
+    # 64.8 KB of overlapping headers in range, a sync every 8 bytes, each
+    # claiming a 262 KB frame (16 float32 channels of 4096 samples), then one
+    # good frame, all in one datagram. Its samples must come out at once, not
+    # after the reader has spent seconds on the false headers.
+    source, send = udp
+    good = encode_frame(frame_samples(7), seq=0)
+    junk = b"\xa7\x4d\x01\x03\x10\x00\x00\x10" * ((64_800 - len(good)) // 8)
+    send(junk + good)
+    blocks = collect(source, N, seconds=1.0)
+    assert blocks, "no samples within 1 s of sending"
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]), frame_samples(7))
+    counters = source.counters()
+    assert counters["corrupt_frames"] == len(junk) // 8
+    assert counters["corrupt_bytes"] == len(junk)
+    assert counters["truncated"] == 0
+    # Measuring goes on: the next datagrams come through in order, no gap.
+    for seq in (1, 2):
+        send(encode_frame(frame_samples(100 * seq), seq=seq))
+    blocks = collect(source, 2 * N, seconds=1.0)
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(100), frame_samples(200)]))
+    assert [b.lost for b in blocks] == [0] * len(blocks)
+
+
 def test_a_lost_datagram_is_a_gap(udp):
     source, send = udp
     send(encode_frame(frame_samples(0), seq=10))
