@@ -71,17 +71,19 @@ _HALF = 1 << 31
 # Header bytes 2-3 (version, type) -> bytes per sample, 0 when out of range;
 # bytes 4-5 (channels, flags) -> channels, 0 when out of range. For reading
 # many headers at once.
-_WIDTH_BY_VERSION_TYPE = np.zeros(1 << 16, dtype=np.int64)
+_WIDTH_BY_VERSION_TYPE = np.zeros(1 << 16, dtype=np.uint8)
 for _type, _dtype in _TYPES.items():
     _WIDTH_BY_VERSION_TYPE[VERSION | _type << 8] = _dtype.itemsize
-_CHANNELS_BY_FIELD = np.zeros(1 << 16, dtype=np.int64)
+_CHANNELS_BY_FIELD = np.zeros(1 << 16, dtype=np.uint8)
 for _flags in (0, FLAG_TIMESTAMP):
     _CHANNELS_BY_FIELD[np.arange(1, MAX_CHANNELS + 1) | _flags << 8] = np.arange(1, MAX_CHANNELS + 1)
 # Syncs are read one by one while they are sparse (as in frames with garbage
 # here and there); once _SMALL of them come closer than _SPARSE bytes apart on
 # average, the rest of the chunk is read with numpy.
-_SMALL = 32
+_SMALL = 16
 _SPARSE = 256
+_SYNC_U16 = SYNC[0] | SYNC[1] << 8
+_LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
 _EMPTY = np.zeros(0, dtype=np.int64)
 _NOWHERE = 1 << 62  # an end no buffer reaches
 
@@ -102,24 +104,32 @@ def _crc_matches(buf: bytearray, view: memoryview, start: int, stop: int) -> boo
     return zlib.crc32(view[start + 2 : crc_at]) == _U32.unpack_from(buf, crc_at)[0]
 
 
+def _count_syncs(buf: bytearray, start: int, stop: int) -> int:
+    """How many syncs lie wholly in buf[start:stop]."""
+    if stop - start < _LONG:
+        return buf.count(SYNC, start, stop)
+    region = np.frombuffer(buf, np.uint8, stop - start, start)
+    return int(np.count_nonzero((region[:-1] == SYNC[0]) & (region[1:] == SYNC[1])))
+
+
 def _headers(buf: bytearray, start: int, stop: int) -> Tuple[np.ndarray, np.ndarray]:
     """Offsets and frame ends of the syncs starting in [start, stop) whose
     header is in range, all read at once (each header has fully arrived)."""
     length = stop - start
     region = np.frombuffer(buf, np.uint8, length + 2, start)
-    i = np.flatnonzero(region[:length] == SYNC[0])
-    i = i[(region[i + 1] == SYNC[1]) & (region[i + 2] == VERSION)] + start
+    first = np.flatnonzero(region[:length] == SYNC[0])
+    first = first[(region[first + 1] == SYNC[1]) & (region[first + 2] == VERSION)]  # cheap first cut
     del region
-    # The first 8 header bytes at every offset as one little-endian integer
-    # (an overlapping view, no copy), then one look-up per sync.
-    words = np.ndarray((length,), dtype="<u8", buffer=buf, offset=start, strides=(1,))[i - start]
-    width = _WIDTH_BY_VERSION_TYPE[(words >> 16) & 0xFFFF]
-    fields = (words >> 32) & 0xFFFF
-    nch = _CHANNELS_BY_FIELD[fields]
-    n = (words >> 48).astype(np.int64)
-    ok = (width * nch > 0) & (n >= 1) & (n <= MAX_SAMPLES)
-    size = HEADER_SIZE + CRC_SIZE + TIMESTAMP_SIZE * (fields >> 8).astype(np.int64) + n * nch * width
-    return i[ok], i[ok] + size[ok]
+    # The first 8 header bytes at each of those (an overlapping view of
+    # the buffer as 8-byte integers, one per offset), split into four 16-bit
+    # fields: sync, version and type, channels and flags, n.
+    head = np.ndarray((length,), dtype="<u8", buffer=buf, offset=start, strides=(1,))[first]
+    sync, version_type, channels_flags, n = head.view("<u2").reshape(-1, 4).T
+    per_instant = _WIDTH_BY_VERSION_TYPE[version_type] * _CHANNELS_BY_FIELD[channels_flags].astype(np.int32)
+    ok = (sync == _SYNC_U16) & (per_instant > 0) & (n - np.uint16(1) < MAX_SAMPLES)
+    at = first[ok] + start
+    size = HEADER_SIZE + CRC_SIZE + TIMESTAMP_SIZE * (channels_flags[ok] >> 8) + n[ok].astype(np.int32) * per_instant[ok]
+    return at, at + size
 
 
 class FrameDecoder(Decoder):
@@ -213,6 +223,7 @@ class FrameDecoder(Decoder):
         found_end: List[int] = []
         i = buf.find(SYNC, start, stop + 1)
         window, count = i, 0
+        passed = 0  # syncs looked at since max(pos, start), none of them taken
         while i >= 0:
             count += 1
             if count > _SMALL:
@@ -224,9 +235,14 @@ class FrameDecoder(Decoder):
                 found_at.append(i)
                 found_end.append(i + size)
             elif size and _crc_matches(buf, view, i, i + size):
-                pos = self._take(buf, [(i, i + size)], pos, out)
-                i = buf.find(SYNC, pos, stop + 1)
+                if i > pos:
+                    self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start) if pos < start else 0))
+                self._accept(buf, i, out)
+                pos = i + size
+                passed = 0
+                i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
                 continue
+            passed += 1
             i = buf.find(SYNC, i + 2, stop + 1)
         at = np.array(found_at, dtype=np.int64)
         ends = np.array(found_end, dtype=np.int64)
@@ -252,11 +268,12 @@ class FrameDecoder(Decoder):
             pos = stop
         return pos
 
-    def _skip(self, buf: bytearray, start: int, stop: int) -> None:
-        """Count buf[start:stop] as garbage: its bytes, and each sync in it as a rejected frame."""
+    def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
+        """Count buf[start:stop] as garbage: its bytes, and each sync in it as
+        a rejected frame (`syncs` of them, when already known)."""
         if stop > start:
             self.counters["corrupt_bytes"] += stop - start
-            self.counters["corrupt_frames"] += buf.count(SYNC, start, stop)
+            self.counters["corrupt_frames"] += _count_syncs(buf, start, stop) if syncs is None else syncs
 
     @staticmethod
     def _verify(buf: bytearray, view: memoryview, at: np.ndarray, stop: np.ndarray) -> List[Tuple[int, int]]:
