@@ -495,6 +495,16 @@ def test_nested_false_headers_then_good_frames():
         assert decoder.buffered == 0
 
 
+def test_a_held_header_ending_where_the_next_chunk_starts_is_counted():
+    # The false header was read in the first call; the sync of the good frame
+    # behind it arrives half-way, its header in the second call.
+    decoder = make_decoder("frame", 1)
+    stream = NESTED + small(0, 9)
+    out = decoder.feed(stream[:12]) + decoder.feed(stream[12:])
+    assert [d.samples[0, 0] for d in out] == [9]
+    assert (decoder.counters["corrupt_frames"], decoder.counters["corrupt_bytes"]) == (1, 8)
+
+
 def test_nested_false_headers_longer_than_their_claim():
     # The false headers outlast the 262 KB they claim, so each one's claimed
     # frame completes and fails its CRC before the good frame arrives.

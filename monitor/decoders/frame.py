@@ -236,7 +236,8 @@ class FrameDecoder(Decoder):
                 found_end.append(i + size)
             elif size and _crc_matches(buf, view, i, i + size):
                 if i > pos:
-                    self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start) if pos < start else 0))
+                    # Syncs before `start` were read in an earlier call (one may end at `start`).
+                    self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
                 self._accept(buf, i, out)
                 pos = i + size
                 passed = 0
