@@ -294,7 +294,37 @@ def test_wraparound_is_not_a_gap():
     assert [d.lost for d in out] == [0, 0, 0, 0]
     assert decoder.counters["gaps"] == 0
     out = decoder.feed(small(0xFFFFFFFF))  # 2 -> 0xFFFFFFFF: backwards, a restart
-    assert decoder.counters["gaps"] == 1 and out[0].lost == 2
+    assert decoder.counters["gaps"] == 0 and decoder.counters["restarts"] == 1
+    assert out[0].restart and out[0].lost == 1
+
+
+def test_a_backward_jump_restarts_sequence_tracking():
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(small(500) + small(501) + small(7) + small(8) + small(10))
+    # The sender started again at 7: no gap is measured from 501 to 7, and
+    # 7 -> 8 -> 10 is tracked afresh (frame 9 missing: 2 samples).
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (0, False), (1, True), (0, False), (2, False)]
+    assert (decoder.counters["restarts"], decoder.counters["gaps"], decoder.counters["lost_samples"]) == (1, 1, 2)
+
+
+def test_a_jump_beyond_max_gap_is_a_restart_not_a_billion_lost_samples():
+    decoder = make_decoder("frame", 1)
+    decoder.max_gap = 100  # the most samples per channel a jump may stand for
+    out = decoder.feed(small(0) + small(50) + small(1_000_000_000) + small(1_000_000_001))
+    # 0 -> 50 is 49 frames of 2 samples, 98 <= 100: a gap. The jump to 1e9 is not.
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (98, False), (1, True), (0, False)]
+    assert decoder.counters["lost_samples"] == 98 and decoder.counters["restarts"] == 1
+    decoder.max_gap = None  # no bound: the sequence is taken at its word
+    out = decoder.feed(small(1_000_000_101))
+    assert out[0].lost == 99 * 2 and not out[0].restart
+
+
+def test_a_restart_on_a_dropped_frame_is_carried_to_the_next_one():
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(small(40) + hand_frame(np.ones((2, 3)), 3) + small(4))
+    # The wrong-channel frame 3 restarted the sequence; frame 4 carries it.
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (2, True)]
+    assert decoder.counters["mismatched"] == 1 and decoder.counters["restarts"] == 1
 
 
 def test_reset_forgets_the_sequence_and_partial_input():

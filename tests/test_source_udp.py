@@ -158,6 +158,65 @@ def test_a_lost_datagram_is_a_gap(udp):
     assert [b.lost for b in blocks] == [0, 2 * N]
 
 
+def test_a_jump_far_beyond_the_wall_clock_is_a_restart_not_a_billion_lost_samples(udp):
+    source, send = udp
+    started = time.monotonic()
+    send(encode_frame(frame_samples(0), seq=10))
+    assert collect(source, N)
+    send(encode_frame(frame_samples(100), seq=1_000_000_000))  # the sender started afresh
+    send(encode_frame(frame_samples(200), seq=1_000_000_001))
+    blocks = collect(source, 2 * N)
+    wall = time.monotonic() - started
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(100), frame_samples(200)]))
+    # A break (no spectrum spans it) of no more samples than the wall time
+    # that passed, not (1e9 - 11) frames of 16 samples.
+    assert 1 <= blocks[0].lost <= wall * RATE
+    assert sum(b.lost for b in blocks) == blocks[0].lost
+    counters = source.counters()
+    assert (counters["restarts"], counters["gaps"], counters["lost_samples"]) == (1, 0, 0)
+
+
+def test_a_backward_jump_is_a_restart_and_tracking_starts_again(udp):
+    source, send = udp
+    started = time.monotonic()
+    for seq in (500, 501):
+        send(encode_frame(frame_samples(seq), seq=seq))
+    assert len(collect(source, 2 * N)) >= 1
+    for seq in (0, 1, 3):  # rebooted: counts from 0 again; 2 is lost
+        send(encode_frame(frame_samples(seq), seq=seq))
+    blocks = collect(source, 3 * N)
+    wall = time.monotonic() - started
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(0), frame_samples(1), frame_samples(3)]))
+    assert 1 <= blocks[0].lost <= wall * RATE
+    assert [b.lost for b in blocks[1:]] == [0, N]  # frame 2, measured by the restarted sequence
+    counters = source.counters()
+    assert (counters["restarts"], counters["gaps"], counters["lost_samples"]) == (1, 1, N)
+
+
+def test_sequence_jumps_may_not_carry_stream_time_past_the_wall_clock(udp):
+    # At 1000 samples/s: a jump of 1.5 s of samples right after the last
+    # frame fits the 2 s allowance and counts exactly; a further jump of 3 s
+    # at once would put stream time 4.5 s ahead of the wall clock, so it is a
+    # restart, and what it lost is measured from the clock.
+    source, send = udp
+    started = time.monotonic()
+    send(encode_frame(frame_samples(0), seq=0))
+    assert collect(source, N)
+    send(encode_frame(frame_samples(1), seq=94))  # 93 frames of 16 missing: 1.488 s
+    send(encode_frame(frame_samples(2), seq=94 + 188))  # 187 more: 2.992 s
+    blocks = collect(source, 2 * N)
+    wall = time.monotonic() - started
+    assert [len(b.samples) for b in blocks] == [N, N]
+    assert blocks[0].lost == 93 * N
+    assert 1 <= blocks[1].lost <= wall * RATE
+    counters = source.counters()
+    assert (counters["gaps"], counters["lost_samples"], counters["restarts"]) == (1, 93 * N, 1)
+    # Stream time (samples and lost samples) stays within the allowance.
+    assert 3 * N + blocks[0].lost + blocks[1].lost <= (wall + 2.0) * RATE
+
+
 def test_csv_lines_end_with_their_datagram():
     source = open_source(udp_config(format="csv"))
     source.open()

@@ -21,12 +21,16 @@ class Decoded(NamedTuple):
     before these (a sequence gap). `timestamp_us` is the frame's timestamp of
     its first sample, when it carried one. `full_scale` is the largest
     positive value of the frame's integer sample type (None for floats and
-    text), for the clipping check."""
+    text), for the clipping check. `restart`: the sender's sequence started
+    afresh just before these (it jumped back, or further ahead than
+    `Decoder.max_gap`), so how much is missing is unknown; `lost` is then
+    only a lower bound (1) that marks the break."""
 
     samples: np.ndarray
     lost: int = 0
     timestamp_us: Optional[int] = None
     full_scale: Optional[float] = None
+    restart: bool = False
 
 
 class Decoder:
@@ -38,6 +42,7 @@ class Decoder:
       corrupt_bytes    bytes skipped while resynchronising
       gaps             sequence jumps
       lost_samples     samples per channel lost in those jumps
+      restarts         sequence jumps back or beyond `max_gap`: the sender started afresh
       mismatched       frames whose channel count differs from the config
       nonfinite        frames or lines rejected for NaN or infinite samples
     """
@@ -45,8 +50,13 @@ class Decoder:
     def __init__(self, channels: int) -> None:
         self.channels = channels
         self.counters: Dict[str, int] = dict.fromkeys(
-            ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "mismatched", "nonfinite"), 0
+            ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "restarts", "mismatched",
+             "nonfinite"), 0
         )
+        # The most samples per channel a forward sequence jump may stand for
+        # before it counts as a restart (None: no bound). A live source sets
+        # it from the time that has passed.
+        self.max_gap: Optional[int] = None
         # Whether the last `whole` feed ended inside a frame (its partial
         # frame was dropped).
         self.truncated = False

@@ -34,8 +34,11 @@ headers nest (bench/acquisition.py measures it).
 
 Sequence numbers: the first frame after creation or `reset()` sets the
 expectation. A forward jump of k frames is a gap of k * n samples (n of the
-arriving frame). A backward jump (the sender restarted or repeated a frame) is
-also a gap; its size is unknown and reported as one frame's worth. A frame
+arriving frame), unless k * n exceeds `max_gap`. Such a jump, or a backward
+one (the sender restarted, or repeated a frame), is a restart: tracking
+starts again from that frame, `restarts` counts it, and its Decoded carries
+`restart` (and `lost` of at least 1), since the sequence says nothing about
+how much is missing; the stream source measures that from the clock. A frame
 with a good CRC that is dropped anyway (wrong channel count, NaN or infinite
 float samples) still advances the sequence, and its samples are added to the
 `lost` of the next delivered frame, so no spectrum spans the hole.
@@ -140,6 +143,7 @@ class FrameDecoder(Decoder):
         self._buf = bytearray()
         self._expected: Optional[int] = None
         self._pending_lost = 0
+        self._pending_restart = False
         self._forget()
 
     @property
@@ -150,6 +154,7 @@ class FrameDecoder(Decoder):
         self._buf = bytearray()
         self._expected = None
         self._pending_lost = 0
+        self._pending_restart = False
         self._forget()
 
     def _forget(self) -> None:
@@ -294,9 +299,16 @@ class FrameDecoder(Decoder):
         expected = self._expected
         if expected is not None and seq != expected:
             missing = (seq - expected) % _SEQ_MOD
-            lost = n if missing >= _HALF else missing * n
-            counters["gaps"] += 1
-            counters["lost_samples"] += lost
+            if missing >= _HALF or (self.max_gap is not None and missing * n > self.max_gap):
+                # Backwards, or further ahead than could have been lost: the
+                # sender started afresh and the sequence says nothing about
+                # what is missing. Tracking starts again from this frame.
+                counters["restarts"] += 1
+                self._pending_restart = True
+            else:
+                lost = missing * n
+                counters["gaps"] += 1
+                counters["lost_samples"] += lost
         self._expected = (seq + 1) % _SEQ_MOD
         if nch != self.channels:
             counters["mismatched"] += 1
@@ -313,8 +325,11 @@ class FrameDecoder(Decoder):
             self._pending_lost += lost + n
             return
         counters["frames"] += 1
-        out.append(Decoded(samples, lost + self._pending_lost, timestamp, _FULL_SCALE.get(stype)))
+        lost += self._pending_lost
+        restart = self._pending_restart
+        out.append(Decoded(samples, max(lost, 1) if restart else lost, timestamp, _FULL_SCALE.get(stype), restart))
         self._pending_lost = 0
+        self._pending_restart = False
 
 
 # Largest positive value of each integer sample type: samples there are clipped.
