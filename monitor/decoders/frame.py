@@ -85,7 +85,6 @@ for _flags in (0, FLAG_TIMESTAMP):
 # average, the rest of the chunk is read with numpy.
 _SMALL = 16
 _SPARSE = 256
-_SYNC_U16 = SYNC[0] | SYNC[1] << 8
 _LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
 _EMPTY = np.zeros(0, dtype=np.int64)
 _NOWHERE = 1 << 62  # an end no buffer reaches
@@ -127,9 +126,9 @@ def _headers(buf: bytearray, start: int, stop: int) -> Tuple[np.ndarray, np.ndar
     # the buffer as 8-byte integers, one per offset), split into four 16-bit
     # fields: sync, version and type, channels and flags, n.
     head = np.ndarray((length,), dtype="<u8", buffer=buf, offset=start, strides=(1,))[first]
-    sync, version_type, channels_flags, n = head.view("<u2").reshape(-1, 4).T
+    _sync, version_type, channels_flags, n = head.view("<u2").reshape(-1, 4).T
     per_instant = _WIDTH_BY_VERSION_TYPE[version_type] * _CHANNELS_BY_FIELD[channels_flags].astype(np.int32)
-    ok = (sync == _SYNC_U16) & (per_instant > 0) & (n - np.uint16(1) < MAX_SAMPLES)
+    ok = (per_instant > 0) & (n - np.uint16(1) < MAX_SAMPLES)  # n - 1 wraps for n = 0
     at = first[ok] + start
     size = HEADER_SIZE + CRC_SIZE + TIMESTAMP_SIZE * (channels_flags[ok] >> 8) + n[ok].astype(np.int32) * per_instant[ok]
     return at, at + size
