@@ -31,9 +31,20 @@ samples keeps stream time in step with real time across it. The arrival clock
 is used rather than frame timestamps because a sensor that rebooted may have
 restarted its clock.
 
+Sequence jumps. A jump forward in the frame sequence counts as its samples
+lost only while stream time stays within JUMP_SLACK_S of the wall clock: the
+decoder is told, before each chunk, how many samples the time since the last
+block (and any earlier time not filled by samples) can account for. A jump
+beyond that, or backwards, means the sender started afresh (a reboot, a
+second sender, a counter bug); it is a restart (`restarts`), treated like a
+reconnect: the lost samples come from the arrival clock as above. So stream
+time never runs ahead of the wall time that passed by more than
+JUMP_SLACK_S (which allows for senders that batch their frames), however
+far the sequence jumps.
+
 Counters: `counters()` returns the link's own (connects, disconnects, bytes,
 overflows, paused) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
-gaps, lost_samples, mismatched, nonfinite), for health checks.
+gaps, lost_samples, restarts, mismatched, nonfinite), for health checks.
 """
 
 import collections
@@ -64,6 +75,9 @@ BACKOFF_MAX_S = 3.0
 POLL_S = 0.1
 JOIN_S = 1.0
 READ_MAX = 65536
+# How far a sequence jump may carry stream time ahead of the wall clock
+# before it counts as a restart of the sender.
+JUMP_SLACK_S = 2.0
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
@@ -121,6 +135,9 @@ class StreamSource(Source):
         self._break = False
         self._last_arrival: Optional[float] = None
         self._carry = 0  # lost samples not yet attached to a block
+        # Wall time (in samples) since the last break that neither samples
+        # nor counted gaps have filled: what a sequence jump may stand for.
+        self._room = 0.0
         self._outage_since: Optional[float] = None
         self._tries = 0  # connect attempts in the current outage
 
@@ -215,11 +232,14 @@ class StreamSource(Source):
                 self._failure = exc
                 self._ready.notify_all()
 
-    def _consume(self, data: bytes, end: bytes = b"") -> None:
-        """Decode a chunk of bytes (and a terminator the link implies, not
-        counted as received) and queue what it completes."""
+    def _consume(self, data: bytes, whole: bool = False) -> None:
+        """Decode a chunk of bytes (`whole`: one that ends every frame or
+        line in it, a datagram) and queue what it completes."""
         self._link["bytes"] += len(data)
-        self._emit_decoded(self._decoder.feed(data + end if end else data))
+        if self._last_arrival is not None:
+            wall = (time.monotonic() - self._last_arrival) * self.sample_rate
+            self._decoder.max_gap = int(self._room + wall + JUMP_SLACK_S * self.sample_rate)
+        self._emit_decoded(self._decoder.feed(data, whole))
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""
@@ -264,7 +284,12 @@ class StreamSource(Source):
             if not parts:
                 stamp = piece.timestamp_us
                 full_scale = piece.full_scale
-            lost += piece.lost
+            if piece.restart and self._last_arrival is not None:
+                # The sender started afresh: what is missing is unknown, so
+                # it is measured like an outage, from the arrival clock.
+                self._break = True
+            else:
+                lost += piece.lost
             if piece.samples.shape[0]:
                 parts.append(piece.samples)
         if parts:
@@ -279,11 +304,14 @@ class StreamSource(Source):
         now = time.monotonic()
         lost += self._carry
         self._carry = 0
-        if self._break:
-            self._break = False
-            assert self._last_arrival is not None
+        if self._last_arrival is not None:
             held = (now - self._last_arrival) * self.sample_rate - samples.shape[0]
-            lost += max(1, int(round(held)))
+            if self._break:
+                lost += max(1, int(round(held)))
+                self._room = 0.0
+            else:
+                self._room += max(0.0, held) - lost
+        self._break = False
         self._last_arrival = now
         self._put(Block(samples=samples, lost=lost, full_scale=full_scale, timestamp_us=stamp))
 
