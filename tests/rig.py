@@ -1,5 +1,8 @@
 """The shared rig for the measuring-path tests: a two-channel simulator
-config (invented values, a choice of this project) and a list-collecting sink."""
+config (invented values, a choice of this project), a capture scenario and a
+list-collecting sink."""
+
+import numpy as np
 
 from monitor.deliver.base import Sink
 from monitor.deliver.payloads import encode
@@ -42,3 +45,33 @@ class ListSink(Sink):
 
     def of(self, suffix):
         return [p for s, p in self.messages if s == suffix]
+
+
+# A band on the 50 Hz tone of `scenario`, and a raw capture around its rises.
+CAPTURE = BASE + """
+[[band]]
+name = "tone"
+channel = "x"
+hz = [40.0, 60.0]
+quantity = "acceleration"
+warning = 1.0
+alarm = 3.0
+delay = 0.0
+[capture]
+seconds = 4.0
+after = 2.0
+keep = 2
+dir = "{dir}"
+"""
+
+
+def scenario(seconds, steps):
+    """An invented signal: a 50 Hz tone whose RMS steps at the given times."""
+    n = int(seconds * FS)
+    t = np.arange(n) / FS
+    rms = np.full(n, 0.2)
+    for at, value in steps:
+        rms[t >= at] = value
+    x = rms * np.sqrt(2) * np.sin(2 * np.pi * 50 * t)
+    y = np.cos(2 * np.pi * 7 * t) + np.arange(n) * 1e-6  # a ramp makes every sample unique
+    return np.column_stack([x, y])

@@ -22,6 +22,7 @@ from .schema import (
     FORMATS,
     MAX_CHANNELS,
     MAX_SAMPLE_RATE,
+    MEMORY_MB,
     NAME_RE,
     QUANTITIES,
     SEVERITY_ZONES,
@@ -40,7 +41,7 @@ from .schema import (
     SpectrumConfig,
     SpeedConfig,
 )
-from .table import Locator, Table, type_name
+from .table import Locator, Table, _show, type_name
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -70,10 +71,11 @@ _KIND_KEYS = {
 # Sections
 
 
-def _read_node(t: Table) -> str:
+def _read_node(t: Table) -> Tuple[str, int]:
     name = t.get_name("name")
+    memory_mb = t.get_int("memory_mb", MEMORY_MB, 32, 1 << 20)
     t.finish()
-    return name
+    return name, memory_mb
 
 
 def _read_simulator(t: Table, speed_rpm: Optional[float]) -> SimulatorConfig:
@@ -374,26 +376,21 @@ def _read_health(t: Table) -> HealthConfig:
         rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
         nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
         implausible=t.get_float("implausible", 1000.0, lo=0.0, lo_open=True, hi=1e9),
+        hysteresis=t.get_float("hysteresis", 0.2, lo=0.0, hi=0.99),
+        hold=t.get_float("hold", 10.0, lo=0.0, hi=86400.0),
+        blind=t.get_float("blind", None, lo=0.0, lo_open=True, hi=86400.0) if t.has("blind") else None,
     )
     t.finish()
     return health
 
 
-_TOPIC_FORBIDDEN = re.compile(r"[+#\x00]")
-
-
 def _read_mqtt(t: Table) -> MqttConfig:
+    from ..deliver.topics import RULE, prefix_problem
+
     prefix = t.get_str("prefix", "bandwatch")
-    expected = "a topic prefix without +, # or NUL, not starting or ending with /, at most 1024 bytes"
-    if (
-        not prefix
-        or _TOPIC_FORBIDDEN.search(prefix)
-        or prefix.startswith("/")
-        or prefix.endswith("/")
-        or "//" in prefix
-        or len(prefix.encode("utf-8")) > 1024
-    ):
-        raise t.bad("prefix", prefix, expected)
+    problem = prefix_problem(prefix)
+    if problem:
+        raise t.fail("prefix", f"{_show(prefix)} {problem}; expected {RULE}")
     cfg = MqttConfig(
         host=t.get_str("host", "localhost"),
         port=t.get_int("port", 1883, 1, 65535),
@@ -461,7 +458,7 @@ def parse(text: str, file: str = "<config>") -> Config:
                               locator.find(key, None, None) or locator.find(key, 1, None)
                               or locator.find("", None, key))
 
-    node = _read_node(section("node", True))
+    node, memory_mb = _read_node(section("node", True))
     speed_t = section("speed", False)
     speed_rpm = speed_t.data.get("rpm") if isinstance(speed_t.data.get("rpm"), (int, float)) else None
     source = _read_source(section("source", True), speed_rpm)
@@ -505,7 +502,7 @@ def parse(text: str, file: str = "<config>") -> Config:
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
 
-    return Config(
+    config = Config(
         path=file,
         node=node,
         source=source,
@@ -519,7 +516,13 @@ def parse(text: str, file: str = "<config>") -> Config:
         capture=capture,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
+        memory_mb=memory_mb,
     )
+    if config.source.sample_rate > 0:  # a file source's rate comes with the recording: checked then
+        from .memory import check
+
+        check(config, line=locator.find("node", None, "memory_mb"))
+    return config
 
 
 def load(path: str) -> Config:

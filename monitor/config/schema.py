@@ -27,6 +27,7 @@ SEVERITY_ZONES = {
     "group2-flexible": (4.5, 7.1),
 }
 MAX_SAMPLE_RATE = 1_000_000.0
+MEMORY_MB = 256  # default [node] memory_mb: a 512 MB board, with room for the system and a broker
 
 @dataclass(frozen=True)
 class SimulatorConfig:
@@ -152,6 +153,9 @@ class HealthConfig:
     # g: no vibration accelerometer measures this much (README, [health]);
     # a sample this large comes from a missing or wrong scale.
     implausible: float = 1000.0
+    hysteresis: float = 0.2  # a fault clears below limit * (1 - hysteresis)
+    hold: float = 10.0  # s below that before a fault clears
+    blind: Optional[float] = None  # s of samples without a result; None: from [spectrum]
 
 
 @dataclass(frozen=True)
@@ -198,3 +202,4 @@ class Config:
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
+    memory_mb: int = MEMORY_MB  # the budget `check` holds the buffers to (config.memory)

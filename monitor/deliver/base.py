@@ -30,12 +30,21 @@ class Sink:
     offline status. `send` must never block the measurement path for long.
 
     `queued` and `dropped` tell how many events wait for the broker and how
-    many were dropped by the queue bound since start (a backend without a
-    queue keeps both 0).
+    many were lost (to the queue bound or a damaged queue file) since start;
+    `held` how many of the waiting ones sit in memory because the disk refused
+    them; `last_event_id` the highest event id the backend has stored, now or
+    before (a backend without a queue keeps all of them 0).
     """
 
     queued = 0
     dropped = 0
+    held = 0
+    last_event_id = 0
+
+    def storage_fault(self) -> bool:
+        """True while the backend's disk refuses writes, and once after it
+        found its stored events damaged; a backend without storage: never."""
+        return False
 
     def open(self, online: Payload, offline: Payload) -> None:
         raise NotImplementedError

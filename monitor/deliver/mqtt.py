@@ -39,10 +39,11 @@ import paho.mqtt.client as mqtt
 
 from ..config import MqttConfig
 from ..errors import DeliveryError
-from .payloads import encode
+from . import exposure
 from .base import TOPICS, Payload, Sink, topic
 from .mqtt_client import PAHO2, client_id, connack_text, new_client, rc_value, read_password
-from .queue import EventQueue
+from .payloads import encode
+from .queue import EventQueue, kept
 
 _BEAT_S = 1.0  # the delivery thread wakes at least this often when idle
 log = logging.getLogger("bandwatch.delivery")
@@ -93,6 +94,8 @@ class MqttSink(Sink):
         password: Optional[str] = None
         if cfg.password_file:
             password = read_password(cfg.password_file)
+        for text in exposure.warnings(cfg):
+            log.warning("%s", text)
 
         # Shared with the callbacks, all under _cond.
         self._cond = threading.Condition(threading.Lock())
@@ -122,6 +125,8 @@ class MqttSink(Sink):
         self._paho_error = ""
         self.published = 0
         self.summaries_dropped = 0
+        self._lost = 0  # events the queue did not take at all
+        self._damage_told = False
         self._thread: Optional[threading.Thread] = None
         self._beat = time.monotonic()
 
@@ -156,8 +161,26 @@ class MqttSink(Sink):
 
     @property
     def dropped(self) -> int:
-        """Events lost to the queue bound since start; only grows."""
-        return self.queue.dropped
+        """Events lost to the queue bound or a damaged queue file since
+        start; only grows."""
+        return self.queue.dropped + self._lost
+
+    @property
+    def held(self) -> int:
+        """Events waiting in memory because the disk refused them."""
+        return self.queue.held
+
+    @property
+    def last_event_id(self) -> int:
+        return self.queue.last_event_id
+
+    def storage_fault(self) -> bool:
+        if self.queue.error is not None:
+            return True
+        if self.queue.damage is not None and not self._damage_told:
+            self._damage_told = True
+            return True
+        return False
 
     @property
     def connected(self) -> bool:
@@ -202,10 +225,12 @@ class MqttSink(Sink):
         data = encode(payload).encode("utf-8")
         if suffix == "event":
             try:
-                self.queue.put(name, data, self._event_qos)
+                # A disk that refuses the write is the queue's to handle; this
+                # catches only what should never happen.
+                self.queue.put(name, data, self._event_qos, event_id=payload.get("id"), keep=kept(payload))
             except Exception as err:  # noqa: BLE001 - the measurement path must go on
-                log.error("MQTT: event could not be stored in %s: %s", self.queue.path, err)
-                self.queue.count_lost()
+                log.error("MQTT: event could not be queued in %s: %s", self.queue.path, err)
+                self._lost += 1
                 return
             self._wake()
         elif suffix == "levels":
@@ -338,7 +363,8 @@ class MqttSink(Sink):
                     timeout: Optional[float] = _BEAT_S
                     if self._closing is not None:
                         timeout = max(0.0, self._close_deadline - time.monotonic()) + 0.05
-                    if not self._cond.wait(timeout) and self._closing is not None:
+                    # A refusing disk is retried every beat.
+                    if not self._cond.wait(timeout) and (self._closing is not None or self.queue.error):
                         break
                 if self._stop:
                     return
@@ -359,6 +385,7 @@ class MqttSink(Sink):
     def _step(
         self, notes: Any, levels: Optional[bytes], status: Optional[bytes], closing: Optional[bytes]
     ) -> None:
+        self.queue.retry()
         confirmed = []
         online = self._online
         for what, mid in notes:

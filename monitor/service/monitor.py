@@ -15,6 +15,7 @@ from typing import Callable, Dict, List, Optional, Tuple
 import numpy as np
 
 from ..analyse.bands import BandBank
+from ..config import memory
 from ..judge.baseline import Baseline, BaselineStore
 from .capture import Capture
 from ..analyse.units import quantity_unit
@@ -86,6 +87,8 @@ class Monitor:
         if not self.fs > 0:
             raise ValueError(f"the {self.source.describe()} source gives sample_rate={self.fs!r}; "
                              "a monitor needs the rate before it is built")
+        if cfg.source.sample_rate <= 0:  # the rate came with the recording: the budget is checked now
+            memory.check(cfg, self.fs)
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self.capture: Optional[Capture] = None
@@ -135,7 +138,8 @@ class Monitor:
         # could never change anything), so most values skip that call.
         self._learners = [base if b.baseline is not None else None
                           for (b, _), base in zip(self.bank.pairs, self.baselines)]
-        self.health = Health(cfg.health, cfg.source.channels, self.fs, cfg.source.scale, cfg.source.unit)
+        self.health = Health(cfg.health, cfg.source.channels, self.fs, cfg.spectrum.span,
+                             scale=cfg.source.scale, unit=cfg.source.unit)
         if previous:
             keyed = [((b.name, self.config.source.channels[ch]), rule)
                      for (b, ch), rule in zip(self.bank.pairs, self.band_rules)]
@@ -265,7 +269,10 @@ class Monitor:
                     if self.source.ended:
                         break
                     quiet = self.clock() - self._last_sample_at
-                    self._emit_health(self.health.on_quiet(quiet, self._stream_s))
+                    if self.capture is not None and quiet >= self.config.health.stale:
+                        self.capture.cut(f"no samples for {quiet:.3g} s")
+                    self._emit_health(self.health.on_quiet(quiet, self._stream_s)
+                                      + self._on_delivery(self._stream_s))
                     continue
                 self._last_sample_at = self.clock()
                 self.feed(block)
@@ -301,12 +308,16 @@ class Monitor:
     def feed(self, block: Block) -> None:
         """Take one block of raw samples through every stage."""
         if block.lost:
-            # No frame may span a gap: start the ring and the average afresh.
+            # No frame may span a gap, so the ring fills afresh; the power of
+            # the frames already averaged stays, so the gap costs one frame.
+            # An outage longer than a result's span restarts the average:
+            # spectra from before it describe another moment of the machine.
             self._samples += block.lost
             self.ring.clear()
-            self.stage.reset()
-            if self.envelope is not None:
-                self.envelope.reset()
+            if block.lost >= self.config.spectrum.span:
+                self.stage.reset()
+                if self.envelope is not None:
+                    self.envelope.reset()
             self._pending = self.config.spectrum.size
         if block.full_scale is not None and not self._counts_noted:
             self._counts_noted = True
@@ -319,13 +330,15 @@ class Monitor:
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
         ))
         samples = block.samples
-        if self.capture is not None:
-            self.capture.feed(samples * self.scale, self._samples + n)
         start = 0
         total = samples.shape[0]
         while start < total:
             take = min(total - start, self._pending)
             self.ring.write(samples[start : start + take], self._ring_scale)
+            if self.capture is not None:
+                # Piece by piece, as scaled in the ring: a trigger in the
+                # frame below then falls exactly at the capture's newest sample.
+                self.capture.feed(self.ring.latest(take), self._samples + take)
             start += take
             self._samples += take
             self._pending -= take
@@ -347,7 +360,7 @@ class Monitor:
             self.notifier.ready(self.status_line(result))
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
-        changed |= self._emit_health(self.health.on_delivery(self.sink.dropped, self.sink.queued, stream_s), result)
+        changed |= self._emit_health(self._on_delivery(stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
@@ -357,6 +370,10 @@ class Monitor:
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
         for observe in self._observers:
             observe(result)
+
+    def _on_delivery(self, t: float) -> List[Change]:
+        sink = self.sink
+        return self.health.on_delivery(sink.dropped, sink.queued, t, sink.held, sink.storage_fault())
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         # The spectrum describes its samples as a whole: the speed read from
@@ -424,6 +441,6 @@ class Monitor:
 
     def _summary_payload(self, result: Result) -> Payload:
         # Called within the frame that made `result`: the ring still holds
-        # exactly the samples the result covers.
-        stats = time_stats(self.ring.latest(self.config.spectrum.span))
+        # the samples the result covers (since the last gap, if one was nearer).
+        stats = time_stats(self.ring.latest(min(self.ring.count, self.config.spectrum.span)))
         return self.reporter.summary(result, stats, self.band_rules, self.baselines)

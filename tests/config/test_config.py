@@ -206,6 +206,10 @@ def test_defaults_documented_in_config_py(tmp_path):
     assert (band.hysteresis, band.delay) == (0.1, 3.0)
     assert band.warning is None and band.alarm is None
     assert config.health.stale == 2.0
+    # Defaults, a choice of this project (README [health]): faults clear below
+    # 0.8 of their limit after 10 s there.
+    assert (config.health.hysteresis, config.health.hold) == (0.2, 10.0)
+    assert config.health.blind is None  # from [spectrum]: twice a result's span, at least 5 s
     assert (config.speed.rpm, config.speed.track, config.speed.search_hz) == (None, False, None)
     assert config.mqtt is None
     assert (config.summary_interval, config.prefix) == (10.0, "bandwatch")
@@ -292,6 +296,10 @@ CASES = {
     "node-name-not-string": Case(demo(('name = "demo-fan"', "name = 42")), "node.name", "name = 42",
                                  ["42", "a string"]),
     "node-name-missing": Case(demo(('name = "demo-fan"', "")), "node.name", "[node]", ["missing"]),
+    "node-memory-mb-16": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\nmemory_mb = 16')), "node.memory_mb",
+                              "memory_mb", ["got 16", "32"]),
+    "node-memory-over-budget": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\nmemory_mb = 64')),
+                                    "node.memory_mb", "memory_mb", ["needs about 64.7 MiB", "budget of 64 MiB"]),
     "node-unknown-key": Case(demo(('name = "demo-fan"', 'name = "demo-fan"\ncolour = "red"')), "node.colour",
                              "colour", ["unknown key"]),
     # --- [source]
@@ -459,13 +467,31 @@ CASES = {
     "mqtt-summary-interval-0": Case(base(("summary_interval = 10.0", "summary_interval = 0")),
                                     "mqtt.summary_interval", "summary_interval", ["got 0", "> 0"]),
     "mqtt-prefix-plus": Case(base(('prefix = "bandwatch"', 'prefix = "band+watch"')), "mqtt.prefix", "prefix",
-                             ["'band+watch'", "without +, #"]),
+                             ["'band+watch'", "wildcard +"]),
     "mqtt-prefix-hash": Case(base(('prefix = "bandwatch"', 'prefix = "plant/#"')), "mqtt.prefix", "prefix",
-                             ["'plant/#'", "without +, #"]),
+                             ["'plant/#'", "wildcard #"]),
     "mqtt-prefix-trailing-slash": Case(base(('prefix = "bandwatch"', 'prefix = "bandwatch/"')), "mqtt.prefix",
-                                       "prefix", ["'bandwatch/'", "ending with /"]),
+                                       "prefix", ["'bandwatch/'", "empty level"]),
     "mqtt-prefix-empty": Case(base(('prefix = "bandwatch"', 'prefix = ""')), "mqtt.prefix", "prefix",
                               ["''", "a topic prefix"]),
+    # MQTT 3.1.1 section 4.7.2: $-topics are the server's; the broker drops publishes there.
+    "mqtt-prefix-sys": Case(base(('prefix = "bandwatch"', 'prefix = "$SYS/bandwatch"')), "mqtt.prefix",
+                            "prefix", ["'$SYS/bandwatch'", "starts with $"]),
+    "mqtt-prefix-share": Case(base(('prefix = "bandwatch"', 'prefix = "$share/alerts/bandwatch"')),
+                              "mqtt.prefix", "prefix", ["'$share/alerts/bandwatch'", "starts with $"]),
+    # MQTT 3.1.1 section 1.5.3: control characters and noncharacters.
+    "mqtt-prefix-newline": Case(base(('prefix = "bandwatch"', 'prefix = "band\\nwatch"')), "mqtt.prefix",
+                                "prefix", ["'band\\nwatch'", "U+000A"]),
+    "mqtt-prefix-del": Case(base(('prefix = "bandwatch"', 'prefix = "band\\u007fwatch"')), "mqtt.prefix",
+                            "prefix", ["U+007F"]),
+    "mqtt-prefix-noncharacter": Case(base(('prefix = "bandwatch"', 'prefix = "band\\uffffwatch"')),
+                                     "mqtt.prefix", "prefix", ["U+FFFF"]),
+    "mqtt-prefix-double-slash": Case(base(('prefix = "bandwatch"', 'prefix = "plant//hall"')), "mqtt.prefix",
+                                     "prefix", ["'plant//hall'", "empty level"]),
+    "mqtt-prefix-65-levels": Case(base(('prefix = "bandwatch"', 'prefix = "' + "/".join(["a"] * 65) + '"')),
+                                  "mqtt.prefix", "prefix", ["65 levels, over 64"]),
+    "mqtt-prefix-257-bytes": Case(base(('prefix = "bandwatch"', 'prefix = "' + "\u00e9" * 128 + 'x"')),
+                                  "mqtt.prefix", "prefix", ["257 bytes", "over 256"]),
     "mqtt-password-file-without-username": Case(
         base(('password_file = ""', 'password_file = "/etc/bandwatch/mqtt.pw"')), "mqtt.password_file",
         "password_file", ["username is empty"]),
@@ -512,6 +538,12 @@ MORE_CASES = {
                                      "corrupt = 1.5", ["1.5", "<= 1"]),
     "health-flatline-zero": Case(demo(("stale = 2.0", "stale = 2.0\nflatline = 0")), "health.flatline",
                                  "flatline = 0", ["0", "> 0"]),
+    "health-hysteresis-one": Case(demo(("stale = 2.0", "stale = 2.0\nhysteresis = 1.0")), "health.hysteresis",
+                                  "hysteresis = 1.0", ["1.0", "<= 0.99"]),
+    "health-blind-zero": Case(demo(("stale = 2.0", "stale = 2.0\nblind = 0")), "health.blind",
+                              "blind = 0", ["0", "> 0"]),
+    "health-hold-negative": Case(demo(("stale = 2.0", "stale = 2.0\nhold = -5")), "health.hold",
+                                 "hold = -5", ["-5", ">= 0"]),
     "capture-keep-zero": Case(demo() + "\n[capture]\nkeep = 0\n", "capture.keep", "keep = 0",
                               ["0", "an integer from 1"]),
     "capture-unknown-key": Case(demo() + "\n[capture]\nbefore = 3.0\n", "capture.before", "before = 3.0",
