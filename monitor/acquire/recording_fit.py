@@ -7,7 +7,8 @@ stored value means in the unit is settled.
   for the recording, uses the recording's rate in place of the config's.
 - The channel count must match `channels` (bands name those channels).
 - No band, order band at its top speed, or envelope band may reach past the
-  recording's Nyquist frequency (`config/rates.py`).
+  recording's Nyquist frequency (`config/rates.py`); a file source's config
+  must fit `[node] memory_mb` at the recording's rate (`config/memory.py`).
 - What a stored value is in the unit (the scale the monitor multiplies by),
   by the rules in `scaling.py`.
 
@@ -18,7 +19,7 @@ import dataclasses
 import logging
 from typing import Optional, Tuple
 
-from ..config import Config, ConfigError, check_rate
+from ..config import Config, ConfigError, check_rate, memory
 from .recording import RecordingError, RecordingReader, open_recording
 from .scaling import stored_scale
 
@@ -66,6 +67,9 @@ def fit_file_source(config: Config) -> Config:
         return config
     try:
         with open_recording(config.source.path) as reader:
-            return fit(config, reader)
+            fitted = fit(config, reader)
     except RecordingError as exc:
         raise ConfigError(config.path, "source.path", str(exc)) from None
+    # The memory budget needs the rate, which only the recording gives.
+    memory.check(fitted)
+    return fitted

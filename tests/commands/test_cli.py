@@ -719,3 +719,16 @@ def test_the_readme_says_how_to_put_bandwatch_on_the_path():
     first = README.index("bandwatch view -c config/demo.toml")
     assert README.index(". .venv/bin/activate") < first
     assert 0 < README.index("sh scripts/demo") < README.index(". .venv/bin/activate")
+
+
+def test_a_file_source_over_the_memory_budget_at_the_recordings_rate_exits_2(tmp_path):
+    # Ten minutes of capture ring at 51.2 kHz on 2 channels is 600 * 51200 * 2
+    # float32 values, 245.8 MB: over a 32 MiB budget, known only once the
+    # recording gives the rate.
+    rec = _pcm_wav(tmp_path / "fast.wav", 51200, seconds=0.1)
+    path = _file_config(tmp_path, rec)
+    path.write_text(path.read_text().replace('name = "rig-9"', 'name = "rig-9"\nmemory_mb = 32')
+                    + "[capture]\nseconds = 600.0\n", encoding="utf-8")
+    result = bandwatch("check", "-c", str(path), timeout=30)
+    assert result.returncode == 2
+    assert "node.memory_mb" in result.stderr and "budget of 32 MiB" in result.stderr
