@@ -197,6 +197,8 @@ class MqttConfig:
     key_file: str = ""
     queue_dir: str = "/var/lib/bandwatch"
     queue_limit: int = 10000
+    spectrum_queue_limit: int = 500  # spectra kept on disk while the broker is away
+    capture_queue_mb: float = 100.0  # captures kept on disk while the broker is away, MB
 
 
 @dataclass(frozen=True)
@@ -207,6 +209,15 @@ class CaptureConfig:
     after: float = 5.0  # written after it
     keep: int = 20  # newest files kept; older ones are deleted
     dir: str = "/var/lib/bandwatch/captures"
+
+
+@dataclass(frozen=True)
+class EvidenceConfig:
+    """Spectra sent for the analyst (monitor.spectrum_payload)."""
+
+    spectrum_on_rise: bool = True  # with every rise of a band level
+    spectrum_interval: float = 0.0  # stream seconds between spectra; 0: none
+    spectrum_top_hz: Optional[float] = None  # highest line sent; None: Nyquist
 
 
 @dataclass(frozen=True)
@@ -222,6 +233,7 @@ class Config:
     envelope: Optional[EnvelopeConfig] = None
     bearings: Tuple[BearingConfig, ...] = ()
     capture: Optional[CaptureConfig] = None
+    evidence: EvidenceConfig = EvidenceConfig()
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
@@ -791,6 +803,8 @@ def _read_mqtt(t: _Table) -> MqttConfig:
         key_file=t.get_str("key_file", ""),
         queue_dir=t.get_str("queue_dir", "/var/lib/bandwatch"),
         queue_limit=t.get_int("queue_limit", 10000, 1, 10_000_000),
+        spectrum_queue_limit=t.get_int("spectrum_queue_limit", 500, 1, 1_000_000),
+        capture_queue_mb=t.get_float("capture_queue_mb", 100.0, lo=0.0, lo_open=True, hi=1_000_000.0),
     )
     if not cfg.host:
         raise t.bad("host", "", "a broker host name or address")
@@ -809,7 +823,24 @@ def _read_mqtt(t: _Table) -> MqttConfig:
     return cfg
 
 
-_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "capture", "mqtt")
+def _read_evidence(t: _Table, nyquist: float) -> EvidenceConfig:
+    interval = t.get_float("spectrum_interval", 0.0, lo=0.0, hi=604800.0,
+                           expected="0 (none) or seconds from 1 to 604800")
+    if 0.0 < interval < 1.0:
+        raise t.bad("spectrum_interval", interval, "0 (none) or seconds from 1 to 604800")
+    top = None
+    if t.has("spectrum_top_hz"):
+        hi = nyquist if nyquist > 0 else math.inf
+        top = t.get_float("spectrum_top_hz", None, lo=0.0, lo_open=True, hi=hi,
+                          expected=f"a frequency > 0 and <= {hi:g} (Nyquist)")
+    evidence = EvidenceConfig(spectrum_on_rise=t.get_bool("spectrum_on_rise", True),
+                              spectrum_interval=interval, spectrum_top_hz=top)
+    t.finish()
+    return evidence
+
+
+_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "capture", "evidence",
+             "mqtt")
 
 
 def parse(text: str, file: str = "<config>") -> Config:
@@ -883,6 +914,7 @@ def parse(text: str, file: str = "<config>") -> Config:
 
     health = _read_health(section("health", False))
     capture = _read_capture(section("capture", True)) if "capture" in data else None
+    evidence = _read_evidence(section("evidence", False), source.nyquist)
     mqtt = None
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
@@ -899,6 +931,7 @@ def parse(text: str, file: str = "<config>") -> Config:
         envelope=envelope,
         bearings=tuple(bearings.values()),
         capture=capture,
+        evidence=evidence,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
     )

@@ -24,6 +24,7 @@ from .capture import Capture
 from .config import Config
 from .errors import ConfigError
 from .delivery.base import Sink
+from .delivery.capture_message import capture_notice
 from .envelope import EnvelopeStage
 from .health import Change, Health
 from .notify import Notifier
@@ -34,6 +35,7 @@ from .rules import BAND_LEVELS, LevelMachine
 from .sources.base import Block, Source
 from .state import EventIds
 from .spectrum import SpectralStage, Spectrum
+from .spectrum_payload import SpectrumSchedule, spectrum_payload
 from .speed import SpeedTracker
 from .stats import time_stats
 
@@ -117,10 +119,13 @@ class Monitor:
         self.capture: Optional[Capture] = None
         if cfg.capture is not None:
             self.capture = Capture(cfg.capture, cfg.node, cfg.source.channels, cfg.source.unit, self.fs)
+            self.capture.on_write = self._capture_written
         self._build_stages()
         self._build_rules(None)
         self._samples = 0  # stream position, lost samples included
         self._next_summary = 0.0
+        self._spectra = SpectrumSchedule()
+        self._rises: List[Payload] = []  # band events that rose at this result
         self._last_sample_at = self.clock()
         self._stream_s = 0.0
 
@@ -329,9 +334,12 @@ class Monitor:
         self.results += 1
         if self.results == 1:
             self.notifier.ready(self.status_line(result))
+        self._rises = []
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
-        changed |= self._emit_health(self.health.on_delivery(self.sink.dropped, self.sink.queued, stream_s), result)
+        sink = self.sink  # events, spectra and captures: one `queue` check for all that can be lost
+        changed |= self._emit_health(self.health.on_delivery(sink.dropped + sink.evidence_dropped,
+                                                             sink.queued + sink.evidence_queued, stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
@@ -339,6 +347,13 @@ class Monitor:
             self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+        rises = self._spectra.take(self.config.evidence, stream_s, self._rises)
+        if rises is not None:
+            self.sink.send("spectrum", spectrum_payload(self.node, self.config, result, self._band_rows(result),
+                                                        rises))
+
+    def _capture_written(self, path: str, meta: Payload) -> None:
+        self.sink.send("capture", capture_notice(self.node, self._stream_s, path, meta))
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         speed_hz = self.speed.update(spectrum)
@@ -373,10 +388,13 @@ class Monitor:
                 speed_hz=num(result.speed_hz),
                 dominant_hz=num(result.dominant_hz[ch]),
             )
-            if self.capture is not None and BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0]):
+            rose = BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0])
+            if self.capture is not None and rose:
                 # Raw samples around the rise, named now, written `after` s later.
                 event["capture"] = self.capture.trigger(self._samples, event)
             self.sink.send("event", event)
+            if rose:
+                self._rises.append(event)
             log.info("%s/%s %s -> %s at %.3g %s", value.name, value.channel, change[0], change[1],
                      value.value, value.unit)
         return changed
@@ -445,9 +463,12 @@ class Monitor:
             }
         payload["speed_hz"] = num(result.speed_hz)
         payload["channels"] = channels
-        payload["bands"] = [
+        payload["bands"] = self._band_rows(result)
+        return payload
+
+    def _band_rows(self, result: Result) -> List[Payload]:
+        return [
             {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level,
              "limits": self._limits(base)}
             for v, rule, base in zip(result.bands, self.band_rules, self.baselines)
         ]
-        return payload

@@ -10,6 +10,8 @@ TOPICS: Dict[str, Tuple[Optional[int], bool]] = {
     "summary": (0, False),
     "event": (None, False),
     "levels": (1, True),
+    "spectrum": (1, False),
+    "capture": (1, False),
 }
 
 
@@ -29,12 +31,15 @@ class Sink:
     offline status. `send` must never block the measurement path for long.
 
     `queued` and `dropped` tell how many events wait for the broker and how
-    many were dropped by the queue bound since start (a backend without a
-    queue keeps both 0).
+    many were dropped by the queue bound since start; `evidence_queued` and
+    `evidence_dropped` the same for spectra and captures together (a backend
+    without a queue keeps all four 0).
     """
 
     queued = 0
     dropped = 0
+    evidence_queued = 0
+    evidence_dropped = 0
 
     def open(self, online: Payload, offline: Payload) -> None:
         raise NotImplementedError

@@ -12,6 +12,13 @@ Topics and their QoS/retain flags are the table in `base.TOPICS`:
 * ``levels``: retained QoS 1, not stored on disk; the latest is kept in
   memory and published again on every reconnect.
 * ``summary``: QoS 0, dropped while disconnected.
+* ``spectrum`` and ``capture``: QoS 1, handed to the delivery thread, which
+  encodes them (a capture: reads its file into the `capture_message`
+  format) and writes them to their own on-disk queues (`DurableQueue`), so
+  neither the encoding nor the disk write ever holds up the measurement.
+  They are published like events, from their queue heads, but only while no
+  event waits: events always go first, and a large capture never sits
+  between the broker and an event still to be sent.
 
 TLS (`tls_context`) verifies the broker's chain and host name and, with
 ``cert_file``, presents a client certificate to brokers that require one.
@@ -35,7 +42,7 @@ import ssl
 import sys
 import threading
 import time
-from typing import Any, Deque, Dict, Optional, Tuple
+from typing import Any, Deque, Dict, List, Optional, Tuple
 
 import paho.mqtt.client as mqtt
 
@@ -43,7 +50,8 @@ from ..config import MqttConfig
 from ..errors import DeliveryError
 from ..payloads import encode
 from .base import TOPICS, Payload, Sink, topic
-from .queue import EventQueue
+from .capture_message import pack
+from .queue import CAPTURES, SPECTRA, DurableQueue, EventQueue
 
 _BEAT_S = 1.0  # the delivery thread wakes at least this often when idle
 log = logging.getLogger("bandwatch.delivery")
@@ -53,6 +61,9 @@ PAHO2 = hasattr(mqtt, "CallbackAPIVersion")
 
 CLOSE_TIMEOUT = 3.0  # seconds close() waits for the broker to confirm
 WINDOW = 16  # events in flight at once; paho's own limit is set above this
+SPECTRUM_WINDOW = 4  # spectra in flight at once
+CAPTURE_WINDOW = 1  # captures in flight at once (each may be megabytes)
+HANDOFF = 64  # spectra and captures waiting for the delivery thread to store them
 
 
 if PAHO2:
@@ -203,7 +214,9 @@ class MqttSink(Sink):
 
     Counters for the pipeline: `queued` (events waiting on disk), `dropped`
     (events lost to the queue bound since start; only grows), `published`
-    (events confirmed by the broker), `summaries_dropped`, and `connected`.
+    (events confirmed by the broker), `summaries_dropped`, and `connected`;
+    for spectra and captures together `evidence_queued`, `evidence_dropped`
+    and `evidence_published`.
     """
 
     def __init__(
@@ -238,10 +251,11 @@ class MqttSink(Sink):
         self._status_due = False
         self._closing: Optional[bytes] = None
         self._close_deadline = 0.0
+        self._handoff: Deque[Tuple[str, str, Payload]] = collections.deque()
 
         # Owned by the delivery thread.
         self._online = False
-        self._inflight: Dict[int, int] = {}  # mid -> queue row id
+        self._inflight: Dict[int, Tuple[DurableQueue, int]] = {}  # mid -> (queue, row id)
         self._offline_mid: Optional[int] = None
         self._offline_sent = False
         self._closed_done = threading.Event()
@@ -254,15 +268,22 @@ class MqttSink(Sink):
         self._session = False
         self._paho_error = ""
         self.published = 0
+        self.evidence_published = 0
         self.summaries_dropped = 0
         self._thread: Optional[threading.Thread] = None
         self._beat = time.monotonic()
 
         self.queue = EventQueue(cfg.queue_dir, cfg.queue_limit)
+        self.spectra: Optional[DurableQueue] = None
+        self.captures: Optional[DurableQueue] = None
         try:
+            # Beside the event queue, under its directory lock.
+            self.spectra = DurableQueue(cfg.queue_dir, cfg.spectrum_queue_limit, SPECTRA, "spectrum", lock=False)
+            self.captures = DurableQueue(cfg.queue_dir, 10 ** 9, CAPTURES, "capture",
+                                         limit_bytes=int(cfg.capture_queue_mb * 1e6), lock=False)
             self._client = self._make_client(password, reconnect_min, reconnect_max)
         except BaseException:
-            self.queue.close()
+            self._close_queues()
             raise
 
     # -- setup ---------------------------------------------------------------
@@ -283,7 +304,7 @@ class MqttSink(Sink):
         if cfg.tls:
             client.tls_set_context(tls_context(cfg))
         client.reconnect_delay_set(min_delay=reconnect_min, max_delay=reconnect_max)
-        client.max_inflight_messages_set(self.window + 4)
+        client.max_inflight_messages_set(self.window + SPECTRUM_WINDOW + CAPTURE_WINDOW + 4)
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
         client.on_publish = self._on_publish
@@ -306,6 +327,23 @@ class MqttSink(Sink):
     def dropped(self) -> int:
         """Events lost to the queue bound since start; only grows."""
         return self.queue.dropped
+
+    @property
+    def evidence_queued(self) -> int:  # type: ignore[override]
+        """Spectra and captures waiting to be stored or confirmed."""
+        assert self.spectra is not None and self.captures is not None
+        return self.spectra.count + self.captures.count + len(self._handoff)
+
+    @property
+    def evidence_dropped(self) -> int:  # type: ignore[override]
+        """Spectra and captures lost to their queues' bounds since start; only grows."""
+        assert self.spectra is not None and self.captures is not None
+        return self.spectra.dropped + self.captures.dropped
+
+    def _store_of(self, suffix: str) -> DurableQueue:
+        store = self.spectra if suffix == "spectrum" else self.captures
+        assert store is not None
+        return store
 
     @property
     def connected(self) -> bool:
@@ -347,6 +385,18 @@ class MqttSink(Sink):
             log.warning("MQTT: %s sent after close; dropped", suffix)
             return
         name = self._topic(suffix)  # refuses unknown suffixes
+        if suffix in ("spectrum", "capture"):
+            # Encoded and stored by the delivery thread: the measuring
+            # thread only hands the payload over.
+            with self._cond:
+                if len(self._handoff) >= HANDOFF:
+                    old = self._handoff.popleft()
+                    self._store_of(old[0]).count_lost()
+                    log.warning("MQTT: the delivery thread is behind; a %s was dropped", old[0])
+                self._handoff.append((suffix, name, payload))
+                self._work = True
+                self._cond.notify()
+            return
         data = encode(payload).encode("utf-8")
         if suffix == "event":
             try:
@@ -381,7 +431,7 @@ class MqttSink(Sink):
             return
         self._closed = True
         if not self._opened:
-            self.queue.close()
+            self._close_queues()
             return
         with self._cond:
             self._closing = encode(offline).encode("utf-8")
@@ -399,11 +449,20 @@ class MqttSink(Sink):
         finally:
             self._client.loop_stop()
         self._online = False
-        left = self.queue.count
-        if left:
-            log.info("MQTT: %d event(s) stay queued in %s for the next start", left, self.queue.path)
-        self.queue.close()
+        with self._cond:  # what the delivery thread had no time to store
+            handoff = list(self._handoff)
+            self._handoff.clear()
+        self._store_evidence(handoff)
+        for store in (self.queue, self.spectra, self.captures):
+            if store is not None and store.count:
+                log.info("MQTT: %d %s(s) stay queued in %s for the next start", store.count, store.what, store.path)
+        self._close_queues()
         log.info("MQTT: closed")
+
+    def _close_queues(self) -> None:
+        for store in (self.spectra, self.captures, self.queue):
+            if store is not None:
+                store.close()
 
     # -- paho callbacks (network thread) ---------------------------------------
 
@@ -492,6 +551,8 @@ class MqttSink(Sink):
                     return
                 notes = list(self._notes)
                 self._notes.clear()
+                handoff = list(self._handoff)
+                self._handoff.clear()
                 self._work = False
                 # Taken now: a newer one arriving meanwhile sets the flag again.
                 levels = self._levels if self._levels_due else None
@@ -499,15 +560,30 @@ class MqttSink(Sink):
                 self._levels_due = self._status_due = False
                 closing = self._closing
             try:
+                self._store_evidence(handoff)
                 self._step(notes, levels, status, closing)
             except Exception:  # noqa: BLE001 - keep delivering; the queue keeps the events
                 log.exception("MQTT: delivery step failed")
                 time.sleep(0.5)
 
+    def _store_evidence(self, items: Any) -> None:
+        """Encode spectra and pack captures, and write them to their queues."""
+        for suffix, name, payload in items:
+            store = self._store_of(suffix)
+            try:
+                data = encode(payload).encode("utf-8") if suffix == "spectrum" else pack(payload)
+                store.put(name, data, TOPICS[suffix][0] or 0)
+            except OSError as err:  # the capture file went away before it was read
+                log.error("MQTT: capture %s cannot be read: %s", payload.get("path"), err.strerror or err)
+                store.count_lost()
+            except Exception as err:  # noqa: BLE001 - keep delivering; counted, and the check says so
+                log.error("MQTT: %s could not be stored in %s: %s", suffix, store.path, err)
+                store.count_lost()
+
     def _step(
         self, notes: Any, levels: Optional[bytes], status: Optional[bytes], closing: Optional[bytes]
     ) -> None:
-        confirmed = []
+        confirmed: Dict[DurableQueue, List[int]] = {}
         online = self._online
         for what, mid in notes:
             if what == "connect":
@@ -523,12 +599,15 @@ class MqttSink(Sink):
             elif what == "published":
                 row = self._inflight.pop(mid, None)
                 if row is not None:
-                    confirmed.append(row)
+                    confirmed.setdefault(row[0], []).append(row[1])
                 elif mid == self._offline_mid and self._offline_mid is not None:
                     self._closed_done.set()
-        if confirmed:
-            self.queue.remove_many(confirmed)
-            self.published += len(confirmed)
+        for store, rows in confirmed.items():
+            store.remove_many(rows)
+            if store is self.queue:
+                self.published += len(rows)
+            else:
+                self.evidence_published += len(rows)
         # Offline, these wait for the next connect, which sends the latest.
         if online and status is not None and closing is None:
             self._client.publish(self._topic("status"), status, qos=1, retain=True)
@@ -542,23 +621,35 @@ class MqttSink(Sink):
             self._finish(closing)
 
     def _fill(self) -> None:
-        """Publish from the queue head until `window` events are in flight."""
+        """Publish from the queue heads: events until `window` are in flight;
+        spectra and captures only while no event waits."""
         if not self._online:
             return
-        room = self.window - len(self._inflight)
-        if room <= 0:
+        if not self._fill_from(self.queue, self.window):
             return
-        busy = set(self._inflight.values())
-        for row in self.queue.peek(self.window):
+        if self.queue.count == 0:
+            assert self.spectra is not None and self.captures is not None
+            if self._fill_from(self.spectra, SPECTRUM_WINDOW):
+                self._fill_from(self.captures, CAPTURE_WINDOW)
+
+    def _fill_from(self, store: DurableQueue, window: int) -> bool:
+        """Publish from `store` until `window` of its rows are in flight;
+        False when the client refused a publish (not connected after all)."""
+        busy = {row for queue, row in self._inflight.values() if queue is store}
+        room = window - len(busy)
+        if room <= 0 or not store.count:
+            return True
+        for row in store.peek(window):
             if room <= 0:
                 break
             if row.id in busy:
                 continue
             info = self._client.publish(row.topic, row.payload, qos=row.qos, retain=False)
             if info.rc != mqtt.MQTT_ERR_SUCCESS:
-                break  # not connected after all; the reconnect re-sends
-            self._inflight[info.mid] = row.id
+                return False  # the reconnect re-sends
+            self._inflight[info.mid] = (store, row.id)
             room -= 1
+        return True
 
     def _finish(self, offline: bytes) -> None:
         """Closing: drain what the broker will take in time, then say offline."""
@@ -566,7 +657,7 @@ class MqttSink(Sink):
             self._closed_done.set()  # the will already turned status offline
             return
         late = time.monotonic() >= self._close_deadline
-        if not late and (self.queue.count or self._inflight):
+        if not late and (self.queue.count or self.evidence_queued or self._inflight):
             self._fill()
             return
         if not self._offline_sent:

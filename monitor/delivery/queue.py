@@ -1,10 +1,13 @@
-"""The on-disk store-and-forward queue of events waiting for the broker.
+"""The on-disk store-and-forward queues of messages waiting for the broker.
 
 Events live in one SQLite file, ``events.sqlite`` in the configured
 ``queue_dir``, oldest first by an AUTOINCREMENT row id (ids are never reused,
 so the order survives deletes and restarts). A row leaves the queue only when
 the broker has confirmed it; beyond ``limit`` rows the oldest are dropped and
-counted in `dropped`.
+counted in `dropped`. Spectra and captures wait the same way in files of
+their own (``spectra.sqlite``, ``captures.sqlite``: `DurableQueue`), each with
+its own bound (captures by bytes), so a backlog of large evidence can never
+push an event out, nor hold an event's write behind its own.
 
 Durability: the database runs in WAL mode with ``synchronous=FULL``, so every
 `put` fsyncs the write-ahead log before it returns. A process killed with
@@ -31,7 +34,7 @@ import os
 import sqlite3
 import threading
 import time
-from typing import Iterable, List, NamedTuple, Optional
+from typing import Iterable, List, NamedTuple, Optional, Tuple
 
 from ..errors import DeliveryError
 
@@ -43,6 +46,8 @@ except ImportError:  # pragma: no cover - not POSIX; run without the lock
 log = logging.getLogger("bandwatch.delivery")
 
 FILENAME = "events.sqlite"
+SPECTRA = "spectra.sqlite"
+CAPTURES = "captures.sqlite"
 LOCKNAME = "events.lock"
 
 _SCHEMA = """
@@ -63,20 +68,30 @@ class QueuedEvent(NamedTuple):
     qos: int
 
 
-class EventQueue:
-    """A bounded FIFO of (topic, payload, qos) rows in ``directory/events.sqlite``.
+class DurableQueue:
+    """A bounded FIFO of (topic, payload, qos) rows in ``directory/filename``.
 
-    `dropped` counts rows thrown away by the bound since this object was
-    opened; it only grows, so a caller can compare it with the last value it
-    saw.
+    The bound is `limit` rows and, when given, `limit_bytes` of payload; the
+    oldest rows go first, and a payload larger than `limit_bytes` on its own
+    is refused. `dropped` counts rows thrown away by the bound since this
+    object was opened; it only grows, so a caller can compare it with the
+    last value it saw. `what` names the queue in messages.
+
+    With `lock` the directory is taken with a lock file, so one process at a
+    time owns it; the event queue does, and the others live beside it.
     """
 
-    def __init__(self, directory: str, limit: int) -> None:
+    def __init__(self, directory: str, limit: int, filename: str = FILENAME, what: str = "event",
+                 limit_bytes: Optional[int] = None, lock: bool = True) -> None:
         if limit < 1:
             raise ValueError(f"queue limit must be at least 1, got {limit}")
+        if limit_bytes is not None and limit_bytes < 1:
+            raise ValueError(f"queue byte limit must be at least 1, got {limit_bytes}")
         self.directory = directory
-        self.path = os.path.join(directory, FILENAME)
+        self.path = os.path.join(directory, filename)
+        self.what = what
         self.limit = int(limit)
+        self.limit_bytes = limit_bytes
         self._lock = threading.Lock()
         self._dropped = 0
         self._lock_fd: Optional[int] = None
@@ -85,17 +100,19 @@ class EventQueue:
             os.makedirs(directory, exist_ok=True)
         except OSError as err:
             raise DeliveryError(
-                f"event queue directory {directory!r} cannot be created: {err.strerror or err}"
+                f"{what} queue directory {directory!r} cannot be created: {err.strerror or err}"
             ) from err
         if not os.path.isdir(directory):
-            raise DeliveryError(f"event queue directory {directory!r} is not a directory")
-        self._take_lock()
+            raise DeliveryError(f"{what} queue directory {directory!r} is not a directory")
+        if lock:
+            self._take_lock()
         try:
             self._db = self._open_db()
         except BaseException:
             self._release_lock()
             raise
-        self._count = self._db.execute("SELECT COUNT(*) FROM events").fetchone()[0]
+        self._count, self._bytes = self._db.execute(
+            "SELECT COUNT(*), COALESCE(SUM(LENGTH(payload)), 0) FROM events").fetchone()
 
     # -- opening -----------------------------------------------------------
 
@@ -107,7 +124,7 @@ class EventQueue:
             fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
         except OSError as err:
             raise DeliveryError(
-                f"event queue directory {self.directory!r} is not writable: {err.strerror or err}"
+                f"{self.what} queue directory {self.directory!r} is not writable: {err.strerror or err}"
             ) from err
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -115,10 +132,10 @@ class EventQueue:
             os.close(fd)
             if err.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
                 raise DeliveryError(
-                    f"event queue directory {self.directory!r} is in use by another process"
+                    f"{self.what} queue directory {self.directory!r} is in use by another process"
                 ) from err
             raise DeliveryError(
-                f"event queue directory {self.directory!r}: cannot lock {lock_path}: {err}"
+                f"{self.what} queue directory {self.directory!r}: cannot lock {lock_path}: {err}"
             ) from err
         self._lock_fd = fd
 
@@ -148,9 +165,9 @@ class EventQueue:
             return self._connect()
         except sqlite3.DatabaseError as err:
             if not os.path.exists(self.path):
-                raise DeliveryError(f"event queue {self.path}: {err}") from err
+                raise DeliveryError(f"{self.what} queue {self.path}: {err}") from err
             aside = f"{self.path}.corrupt-{time.strftime('%Y%m%dT%H%M%S')}"
-            log.error("event queue %s is unreadable (%s); moved to %s, starting empty", self.path, err, aside)
+            log.error("%s queue %s is unreadable (%s); moved to %s, starting empty", self.what, self.path, err, aside)
             try:
                 os.replace(self.path, aside)
                 for suffix in ("-wal", "-shm"):
@@ -158,22 +175,30 @@ class EventQueue:
                         os.replace(self.path + suffix, aside + suffix)
                 return self._connect()
             except (OSError, sqlite3.DatabaseError) as err2:
-                raise DeliveryError(f"event queue {self.path} cannot be opened: {err2}") from err2
+                raise DeliveryError(f"{self.what} queue {self.path} cannot be opened: {err2}") from err2
         except OSError as err:  # pragma: no cover - sqlite reports most as DatabaseError
-            raise DeliveryError(f"event queue {self.path} cannot be opened: {err}") from err
+            raise DeliveryError(f"{self.what} queue {self.path} cannot be opened: {err}") from err
 
     # -- the queue ---------------------------------------------------------
 
     def _conn(self) -> sqlite3.Connection:
         if self._db is None:
-            raise DeliveryError(f"event queue {self.path} is closed")
+            raise DeliveryError(f"{self.what} queue {self.path} is closed")
         return self._db
 
-    def put(self, topic: str, payload: bytes, qos: int) -> int:
-        """Store one event; return its row id once it is committed to disk.
+    def put(self, topic: str, payload: bytes, qos: int) -> Optional[int]:
+        """Store one row; return its row id once it is committed to disk.
 
-        Beyond the limit the oldest rows go first and are counted in `dropped`.
+        Beyond the bound the oldest rows go first and are counted in
+        `dropped`; a payload over `limit_bytes` by itself is dropped at once
+        (counted, None returned).
         """
+        size = len(payload)
+        if self.limit_bytes is not None and size > self.limit_bytes:
+            log.warning("%s queue: a %d-byte %s is larger than the whole bound of %d bytes; dropped",
+                        self.what, size, self.what, self.limit_bytes)
+            self.count_lost()
+            return None
         with self._lock:
             db = self._conn()
             db.execute("BEGIN IMMEDIATE")
@@ -182,22 +207,40 @@ class EventQueue:
                     "INSERT INTO events (topic, payload, qos, created) VALUES (?, ?, ?, ?)",
                     (topic, sqlite3.Binary(payload), int(qos), time.time()),
                 ).lastrowid
-                excess = self._count + 1 - self.limit
-                if excess > 0:
-                    db.execute(
-                        "DELETE FROM events WHERE id IN (SELECT id FROM events ORDER BY id LIMIT ?)",
-                        (excess,),
-                    )
+                excess, freed = self._make_room(db, size)
                 db.execute("COMMIT")
             except BaseException:
                 db.execute("ROLLBACK")
                 raise
-            if excess > 0:
-                self._dropped += excess
-                self._count = self.limit
-            else:
-                self._count += 1
-            return int(row)
+            self._dropped += excess
+            self._count += 1 - excess
+            self._bytes += size - freed
+        if excess and self.what != "event":  # events: the pipeline's `queue` check says so
+            log.warning("%s queue full: dropped the %d oldest %s(s)", self.what, excess, self.what)
+        return int(row)
+
+    def _make_room(self, db: sqlite3.Connection, size: int) -> Tuple[int, int]:
+        """Delete the oldest rows beyond the bound, the new row (already
+        inserted, the newest) counted; returns (rows, bytes) deleted."""
+        excess = max(0, self._count + 1 - self.limit)
+        if self.limit_bytes is not None and self._bytes + size > self.limit_bytes:
+            # Walk from the oldest until what stays fits; the new row always stays.
+            over = self._bytes + size - self.limit_bytes
+            n, freed = 0, 0
+            for (length,) in db.execute("SELECT LENGTH(payload) FROM events ORDER BY id LIMIT ?",
+                                        (self._count,)):
+                if freed >= over and n >= excess:
+                    break
+                n += 1
+                freed += int(length)
+            excess = n
+        if excess <= 0:
+            return 0, 0
+        ids = "SELECT id FROM events ORDER BY id LIMIT ?"
+        freed = db.execute(f"SELECT COALESCE(SUM(LENGTH(payload)), 0) FROM events WHERE id IN ({ids})",
+                           (excess,)).fetchone()[0]
+        db.execute(f"DELETE FROM events WHERE id IN ({ids})", (excess,))
+        return excess, int(freed)
 
     def peek(self, n: int) -> List[QueuedEvent]:
         """The oldest `n` events, oldest first; they stay in the queue."""
@@ -230,23 +273,32 @@ class EventQueue:
                 db.execute("ROLLBACK")
                 raise
             self._count -= removed
+            if self._count == 0:
+                self._bytes = 0
+            elif self.limit_bytes is not None:
+                self._bytes = db.execute("SELECT COALESCE(SUM(LENGTH(payload)), 0) FROM events").fetchone()[0]
             return removed
 
     @property
     def count(self) -> int:
-        """Events waiting."""
+        """Rows waiting."""
         return self._count
+
+    @property
+    def bytes(self) -> int:
+        """Payload bytes waiting (kept exactly where there is a byte bound)."""
+        return self._bytes
 
     def __len__(self) -> int:
         return self._count
 
     @property
     def dropped(self) -> int:
-        """Events dropped by the bound (or lost to a failed write) since opening."""
+        """Rows dropped by the bound (or lost to a failed write) since opening."""
         return self._dropped
 
     def count_lost(self, n: int = 1) -> None:
-        """Count events that never made it into the queue (a failed write)."""
+        """Count rows that never made it into the queue (a failed write)."""
         with self._lock:
             self._dropped += n
 
@@ -264,8 +316,15 @@ class EventQueue:
                     self._db = None
             self._release_lock()
 
-    def __enter__(self) -> "EventQueue":
+    def __enter__(self) -> "DurableQueue":
         return self
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+class EventQueue(DurableQueue):
+    """The events: ``events.sqlite``, bounded by rows, holding the directory's lock."""
+
+    def __init__(self, directory: str, limit: int) -> None:
+        super().__init__(directory, limit)
