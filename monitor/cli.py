@@ -52,6 +52,11 @@ def _parser() -> argparse.ArgumentParser:
     reset = with_config("reset-baseline", "forget learned baselines, so the service learns them afresh "
                         "(then: systemctl reload bandwatch)")
     reset.add_argument("bands", nargs="*", metavar="BAND", help="band names (default: every band with a baseline)")
+    collect = with_config("collect", "file the events, spectra, captures and summaries of every node under "
+                          "the [mqtt] prefix into a folder, for the analyst")
+    collect.add_argument("-o", "--output", required=True, metavar="DIR")
+    collect.add_argument("--client-id", metavar="ID", help="MQTT client id of the persistent session "
+                         "(default: fixed for this machine, prefix and folder)")
     b = with_config("bench", "measure how many times faster than real time the pipeline runs")
     b.add_argument("--seconds", type=float, default=120.0, metavar="S",
                    help="seconds of simulated signal to run through (default: 120)")
@@ -79,6 +84,10 @@ def main(argv: Optional[List[str]] = None) -> int:
 def _main(argv: Optional[List[str]]) -> int:
     args = _parser().parse_args(argv)
     _setup_logging(args.log_level)
+    if args.command == "collect":  # reads only [mqtt]: runs away from any node
+        from .collect import collect_command
+
+        return collect_command(args.config, args.output, args.client_id)
     try:
         config = load(args.config)
     except ConfigError as exc:

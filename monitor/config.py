@@ -843,10 +843,9 @@ _SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band
              "mqtt")
 
 
-def parse(text: str, file: str = "<config>") -> Config:
-    """Check a config given as TOML text; raise ConfigError on the first fault."""
+def _toml(text: str, file: str) -> Dict[str, Any]:
     try:
-        data = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         line = getattr(exc, "lineno", None)
         if line is None:
@@ -854,6 +853,10 @@ def parse(text: str, file: str = "<config>") -> Config:
             line = int(m.group(1)) if m else None
         raise ConfigError(file, "", f"not valid TOML: {exc}", line) from None
 
+
+def parse(text: str, file: str = "<config>") -> Config:
+    """Check a config given as TOML text; raise ConfigError on the first fault."""
+    data = _toml(text, file)
     locator = _Locator(text)
     top = _Table(data, file, locator, "")
 
@@ -937,15 +940,31 @@ def parse(text: str, file: str = "<config>") -> Config:
     )
 
 
-def load(path: str) -> Config:
-    """Read and check the config file at `path`."""
+def _read_text(path: str) -> str:
     try:
         with open(path, "rb") as fh:
             raw = fh.read()
     except OSError as exc:
         raise ConfigError(path, "", f"cannot read the file: {exc.strerror or exc}") from None
     try:
-        text = raw.decode("utf-8")
+        return raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ConfigError(path, "", f"not UTF-8 text (byte {exc.start})") from None
-    return parse(text, path)
+
+
+def load(path: str) -> Config:
+    """Read and check the config file at `path`."""
+    return parse(_read_text(path), path)
+
+
+def load_mqtt(path: str) -> MqttConfig:
+    """Only the [mqtt] section of the file at `path`, checked as `load` checks
+    it; other sections are not read, so a node's whole config serves as well
+    as a file holding [mqtt] alone (what `bandwatch collect` needs)."""
+    text = _read_text(path)
+    data = _toml(text, path)
+    locator = _Locator(text)
+    if not isinstance(data.get("mqtt"), dict):
+        raise ConfigError(path, "mqtt", "missing; the broker's [mqtt] section is required here",
+                          locator.find("", None, "mqtt"))
+    return _read_mqtt(_Table(data["mqtt"], path, locator, "mqtt"))

@@ -181,3 +181,34 @@ def test_sigkill_during_writes_leaves_a_consistent_queue(tmp_path):
         assert len(ids) - 1 >= reported
         assert q.count == len(ids)
         q.put("t", payload(-1), 1)  # and it keeps working
+
+
+def test_a_byte_bound_drops_the_oldest_until_the_new_row_fits(tmp_path):
+    from monitor.delivery.queue import CAPTURES, DurableQueue
+
+    with DurableQueue(str(tmp_path), 10 ** 9, CAPTURES, "capture", limit_bytes=1000, lock=False) as q:
+        for i in range(4):
+            q.put("t", bytes([i]) * 300, 1)  # 4 x 300 = 1200 > 1000: the first goes
+        assert (q.count, q.bytes, q.dropped) == (3, 900, 1)
+        assert [r.payload[0] for r in q.peek(10)] == [1, 2, 3]
+        q.put("t", b"\x09" * 700, 1)  # room for 700: two more of the oldest go
+        assert (q.count, q.bytes, q.dropped) == (2, 1000, 3)
+        assert [r.payload[0] for r in q.peek(10)] == [3, 9]
+        # Larger than the whole bound: refused at once, counted, the rest kept.
+        assert q.put("t", b"x" * 1001, 1) is None
+        assert (q.count, q.bytes, q.dropped) == (2, 1000, 4)
+        q.remove(q.peek(1)[0].id)
+        assert (q.count, q.bytes) == (1, 700)
+    with DurableQueue(str(tmp_path), 10 ** 9, CAPTURES, "capture", limit_bytes=1000, lock=False) as q:
+        assert (q.count, q.bytes, q.dropped) == (1, 700, 0)  # read back on opening
+
+
+def test_evidence_queues_live_beside_the_event_queue_under_its_lock(tmp_path):
+    from monitor.delivery.queue import SPECTRA, DurableQueue
+
+    with EventQueue(str(tmp_path), 10), DurableQueue(str(tmp_path), 2, SPECTRA, "spectrum", lock=False) as s:
+        for i in range(3):
+            s.put("t", payload(i), 1)
+        assert s.count == 2 and s.dropped == 1
+        assert sorted(os.listdir(tmp_path))[:3] == ["events.lock", "events.sqlite", "events.sqlite-shm"]
+        assert "spectra.sqlite" in os.listdir(tmp_path)

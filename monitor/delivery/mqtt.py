@@ -180,6 +180,23 @@ def tls_context(cfg: MqttConfig) -> ssl.SSLContext:
     return context
 
 
+def make_client(cfg: MqttConfig, client_id: str, password: Optional[str], clean_session: bool,
+                reconnect_min: float, reconnect_max: float) -> Any:
+    """A paho client (1.6 or 2.x, MQTT 3.1.1) with the login, TLS and
+    reconnect backoff of `cfg`; the caller adds its callbacks."""
+    if PAHO2:
+        client = _Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=clean_session,
+                         protocol=mqtt.MQTTv311)
+    else:
+        client = _Client(client_id=client_id, clean_session=clean_session, protocol=mqtt.MQTTv311)
+    if cfg.username:
+        client.username_pw_set(cfg.username, password)
+    if cfg.tls:
+        client.tls_set_context(tls_context(cfg))
+    client.reconnect_delay_set(min_delay=reconnect_min, max_delay=reconnect_max)
+    return client
+
+
 def _rc_value(rc: Any) -> int:
     """The number in a paho 1.x int or a paho 2.x ReasonCode."""
     value = getattr(rc, "value", rc)
@@ -289,21 +306,7 @@ class MqttSink(Sink):
     # -- setup ---------------------------------------------------------------
 
     def _make_client(self, password: Optional[str], reconnect_min: float, reconnect_max: float) -> Any:
-        cfg = self.cfg
-        if PAHO2:
-            client = _Client(
-                mqtt.CallbackAPIVersion.VERSION2,
-                client_id=self.client_id,
-                clean_session=True,
-                protocol=mqtt.MQTTv311,
-            )
-        else:
-            client = _Client(client_id=self.client_id, clean_session=True, protocol=mqtt.MQTTv311)
-        if cfg.username:
-            client.username_pw_set(cfg.username, password)
-        if cfg.tls:
-            client.tls_set_context(tls_context(cfg))
-        client.reconnect_delay_set(min_delay=reconnect_min, max_delay=reconnect_max)
+        client = make_client(self.cfg, self.client_id, password, True, reconnect_min, reconnect_max)
         client.max_inflight_messages_set(self.window + SPECTRUM_WINDOW + CAPTURE_WINDOW + 4)
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
