@@ -233,7 +233,8 @@ def _of(run, suffix):
 
 def test_run_topics(run_60s):
     suffixes = {_suffix(t) for t, _ in run_60s}
-    assert suffixes == {"status", "summary", "event", "levels"}
+    # The demo's bands rise, and each rise sends its spectrum (README, What is published).
+    assert suffixes == {"status", "summary", "event", "levels", "spectrum"}
 
 
 def test_run_starts_online_and_ends_offline(run_60s):
