@@ -606,11 +606,11 @@ class MqttSink(Sink):
                 elif mid == self._offline_mid and self._offline_mid is not None:
                     self._closed_done.set()
         for store, rows in confirmed.items():
-            store.remove_many(rows)
+            removed = store.remove_many(rows)
             if store is self.queue:
-                self.published += len(rows)
+                self.published += removed
             else:
-                self.evidence_published += len(rows)
+                self.evidence_published += removed
         # Offline, these wait for the next connect, which sends the latest.
         if online and status is not None and closing is None:
             self._client.publish(self._topic("status"), status, qos=1, retain=True)
