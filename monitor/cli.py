@@ -245,6 +245,11 @@ def print_check(config: Config, out: TextIO) -> None:
         for r in rows:
             w("  " + "  ".join(cell.ljust(widths[i]) for i, cell in enumerate(r)).rstrip() + "\n")
     w(f"health: stale after {config.health.stale:g} s without samples\n")
+    ev = config.evidence
+    when = [label for label, on in (("with each band rise", ev.spectrum_on_rise),
+                            (f"every {ev.spectrum_interval:g} s", ev.spectrum_interval > 0)) if on]
+    top = "Nyquist" if ev.spectrum_top_hz is None else f"{ev.spectrum_top_hz:g} Hz"
+    w(f"spectra: {' and '.join(when) or 'none'}, lines up to {top}\n")
     if config.mqtt is None:
         w("output: JSON lines on stdout (no [mqtt] section)\n")
     else:

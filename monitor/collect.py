@@ -22,7 +22,7 @@ import os
 import socket
 import sys
 import threading
-from typing import Any, List, Optional, Tuple
+from typing import Any, Dict, List, Optional, Tuple
 
 from .config import MqttConfig, load_mqtt
 from .errors import ConfigError, DeliveryError
@@ -144,6 +144,17 @@ def collect_command(config_path: str, out_dir: str, client_id: Optional[str] = N
     except DeliveryError as exc:
         log.error("%s", exc)
         return EXIT_FAILURE
-    counts = ", ".join(f"{n} {kind}" for kind, n in sorted(filer.counts.items())) or "nothing"
-    log.info("collected %s", counts)
+    log.info("%s", tally(filer.counts))
     return EXIT_OK
+
+
+def tally(counts: Dict[str, int]) -> str:
+    """One line of what was filed: `filed: event 3, spectrum 4; repeats dropped: spectrum 1; refused 2`."""
+    filed = [f"{k} {n}" for k, n in sorted(counts.items()) if " " not in k and k != "refused"]
+    repeats = [f"{k.split()[0]} {n}" for k, n in sorted(counts.items()) if k.endswith(" repeated")]
+    line = "filed: " + (", ".join(filed) or "nothing")
+    if repeats:
+        line += "; repeats dropped: " + ", ".join(repeats)
+    if counts.get("refused"):
+        line += f"; refused {counts['refused']}"
+    return line

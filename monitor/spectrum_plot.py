@@ -43,8 +43,13 @@ def _title(meta: Dict[str, Any]) -> str:
     events: Sequence[Dict[str, Any]] = meta.get("events") or []
     if not events:
         return head + "  (sent on the interval)"
-    parts = [f"event {e.get('id')}: {e.get('name')}/{e.get('channel')} {e.get('previous')} -> {e.get('level')}"
-             for e in events]
+    units = {(b.get("name"), b.get("channel")): b.get("unit") for b in meta.get("bands") or []}
+    parts = []
+    for e in events:
+        text = f"event {e.get('id')}: {e.get('name')}/{e.get('channel')} {e.get('previous')} -> {e.get('level')}"
+        if isinstance(e.get("value"), (int, float)):
+            text += f" at {e['value']:.3g} {units.get((e.get('name'), e.get('channel')), '')}".rstrip()
+        parts.append(text)
     return head + "\n" + "; ".join(parts)
 
 
@@ -80,7 +85,7 @@ def draw_spectrum(path: str, meta: Dict[str, Any], freqs: np.ndarray, rms: np.nd
     axes[0].set_title(_title(meta), loc="left", fontsize=9)
     # Fixed margins: tight_layout measures every log tick and takes seconds.
     fig.subplots_adjust(left=0.08, right=0.98, top=1 - 0.55 / fig.get_figheight(),
-                        bottom=0.45 / fig.get_figheight(), hspace=0.12)
+                        bottom=0.65 / fig.get_figheight(), hspace=0.12)
     fig.savefig(path, dpi=90, format="png")
 
 

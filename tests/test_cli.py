@@ -459,3 +459,8 @@ def test_console_script_version():
                             text=True, timeout=30)
     assert result.returncode == 0
     assert result.stdout.strip() == f"bandwatch {__version__}"
+
+
+def test_check_says_when_spectra_are_sent(check_output):
+    # config/demo.toml: spectra with each rise, lines up to 250 Hz.
+    assert "spectra: with each band rise, lines up to 250 Hz" in check_output.splitlines()

@@ -381,7 +381,7 @@ def test_the_command_runs_until_sigterm_and_refuses_a_file_without_mqtt(tmp_path
         finally:
             if proc.poll() is None:
                 proc.kill()
-        assert any("collected 1 event" in line for line in lines), "".join(lines)
+        assert any("filed: event 1" in line for line in lines), "".join(lines)
     path.write_text('[node]\nname = "x"\n')
     result = subprocess.run([sys.executable, "-m", "monitor", "collect", "-c", str(path), "-o", str(out)],
                             cwd=ROOT, capture_output=True, text=True, timeout=30)

@@ -179,3 +179,24 @@ def test_without_matplotlib_spectra_are_filed_and_the_need_is_logged_once(tmp_pa
     assert "pip install 'bandwatch[plot]'" in result.stderr
     names = os.listdir(tmp_path / "pump-1" / "spectra")
     assert sorted(names) == ["pump-1-20240301T101500.250Z-event4.npz", "pump-1-20240301T101500.250Z-event5.npz"]
+
+
+def test_limits_drawn_as_the_level_of_one_line():
+    from monitor.spectrum_plot import single_line_level
+
+    f = np.array([10.0, 100.0])
+    # A sine: acceleration = 2 pi f x velocity = (2 pi f)^2 x displacement
+    # (common practice); 1 g = 9.80665 m/s^2 (CGPM 1901).
+    assert single_line_level(4.5, "velocity", "m/s2", f) == pytest.approx(4.5e-3 * 2 * np.pi * f)
+    assert single_line_level(4.5, "velocity", "g", f) == pytest.approx(4.5e-3 * 2 * np.pi * f / 9.80665)
+    assert single_line_level(50.0, "displacement", "m/s2", f) == pytest.approx(50e-6 * (2 * np.pi * f) ** 2)
+    assert single_line_level(0.3, "acceleration", "g", f).tolist() == [0.3, 0.3]
+    assert single_line_level(0.3, "acceleration", "furlong", f) is None
+
+
+def test_the_tally_says_what_was_filed():
+    from monitor.collect import tally
+
+    assert tally({}) == "filed: nothing"
+    assert tally({"event": 3, "spectrum": 4, "spectrum repeated": 1, "refused": 2}) == \
+        "filed: event 3, spectrum 4; repeats dropped: spectrum 1; refused 2"
