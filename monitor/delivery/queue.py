@@ -153,6 +153,10 @@ class DurableQueue:
             if str(mode).lower() != "wal":
                 raise sqlite3.OperationalError(f"journal_mode is {mode}, WAL refused")
             db.execute("PRAGMA synchronous=FULL")
+            if self.what != "event":
+                # Spectra and captures are read once and deleted: a page
+                # cache (2 MB by default) would only hold dead blobs.
+                db.execute("PRAGMA cache_size=-128")
             db.execute(_SCHEMA)
             db.execute("PRAGMA quick_check").fetchone()
         except BaseException:
