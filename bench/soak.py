@@ -337,8 +337,12 @@ class CountingSink(Sink):
 
     queued = property(lambda self: self.inner.queued)  # type: ignore[assignment]
     dropped = property(lambda self: self.inner.dropped)  # type: ignore[assignment]
+    held = property(lambda self: self.inner.held)  # type: ignore[assignment]
     evidence_queued = property(lambda self: self.inner.evidence_queued)  # type: ignore[assignment]
     evidence_dropped = property(lambda self: self.inner.evidence_dropped)  # type: ignore[assignment]
+
+    def storage_fault(self) -> bool:
+        return self.inner.storage_fault()
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self.inner, name)  # heartbeat, connected, published

@@ -1,6 +1,6 @@
 """The shared rig for the measuring-path tests: a two-channel simulator
-config (invented values, a choice of this project), a list-collecting sink,
-a run of the monitor over samples in memory, and the capture scenario."""
+config (invented values, a choice of this project), a capture scenario, a
+list-collecting sink and a run of the monitor over samples in memory."""
 
 import numpy as np
 
@@ -58,8 +58,8 @@ def run(config, samples, **kw):
     return monitor, sink
 
 
-# A tone band that rises at once, and captures around it (format `dir`).
-CAPTURE_CONFIG = BASE + """
+# A band on the 50 Hz tone of `scenario`, rising at once.
+TONE_BAND = """
 [[band]]
 name = "tone"
 channel = "x"
@@ -68,7 +68,9 @@ quantity = "acceleration"
 warning = 1.0
 alarm = 3.0
 delay = 0.0
-[capture]
+"""
+# That band, and a raw capture around its rises.
+CAPTURE = BASE + TONE_BAND + """[capture]
 seconds = 4.0
 after = 2.0
 keep = 2

@@ -167,8 +167,9 @@ def _run(config: Config) -> int:
         return EXIT_FAILURE
     ids = None
     try:
-        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None)
         sink = open_sink(config)
+        # Above every id the queue has stored: a lost id file cannot make ids repeat.
+        ids = EventIds(config.mqtt.queue_dir if config.mqtt else None, floor=sink.last_event_id)
         state_dir = config.mqtt.queue_dir if config.mqtt else None
         monitor = Monitor(config, source, sink, ids=ids, notifier=Notifier(), state_dir=state_dir)
         log.info("monitoring %s: %s source, %d channel(s) at %g Hz", config.node, config.source.kind,
@@ -210,6 +211,7 @@ def print_check(config: Config, out: TextIO) -> None:
     from ..acquire.sources import available
     from ..analyse.bearings import bearing_orders
     from ..analyse.windows import Window
+    from ..config import memory
 
     src = config.source
     spec = config.spectrum
@@ -276,9 +278,14 @@ def print_check(config: Config, out: TextIO) -> None:
                             (f"every {ev.spectrum_interval:g} s", ev.spectrum_interval > 0)) if on]
     top = "Nyquist" if ev.spectrum_top_hz is None else f"{ev.spectrum_top_hz:g} Hz"
     w(f"spectra: {' and '.join(when) or 'none'}, lines up to {top}\n")
+    w(memory.summary(config))
     if config.mqtt is None:
         w("output: JSON lines on stdout (no [mqtt] section)\n")
     else:
         m = config.mqtt
         w(f"output: MQTT {m.host}:{m.port}, topics {m.prefix}/{config.node}/..., qos {m.qos}, "
           f"summary every {m.summary_interval:g} s\n")
+        from ..deliver.exposure import warnings
+
+        for text in warnings(m):
+            w(f"warning: {text}\n")

@@ -20,6 +20,7 @@ from .schema import (
     FORMATS,
     MAX_CHANNELS,
     MAX_SAMPLE_RATE,
+    MEMORY_MB,
     NAME_RE,
     QUANTITIES,
     SEVERITY_ZONES,
@@ -39,7 +40,7 @@ from .schema import (
     SpectrumConfig,
     SpeedConfig,
 )
-from .table import Locator, Table, type_name
+from .table import Locator, Table, _show, type_name
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -69,10 +70,11 @@ _KIND_KEYS = {
 # Sections
 
 
-def _read_node(t: Table) -> str:
+def _read_node(t: Table) -> Tuple[str, int]:
     name = t.get_name("name")
+    memory_mb = t.get_int("memory_mb", MEMORY_MB, 32, 1 << 20)
     t.finish()
-    return name
+    return name, memory_mb
 
 
 def _read_simulator(t: Table, speed_rpm: Optional[float]) -> SimulatorConfig:
@@ -376,21 +378,13 @@ def _read_health(t: Table) -> HealthConfig:
     return health
 
 
-_TOPIC_FORBIDDEN = re.compile(r"[+#\x00]")
-
-
 def _read_mqtt(t: Table) -> MqttConfig:
+    from ..deliver.topics import RULE, prefix_problem
+
     prefix = t.get_str("prefix", "bandwatch")
-    expected = "a topic prefix without +, # or NUL, not starting or ending with /, at most 1024 bytes"
-    if (
-        not prefix
-        or _TOPIC_FORBIDDEN.search(prefix)
-        or prefix.startswith("/")
-        or prefix.endswith("/")
-        or "//" in prefix
-        or len(prefix.encode("utf-8")) > 1024
-    ):
-        raise t.bad("prefix", prefix, expected)
+    problem = prefix_problem(prefix)
+    if problem:
+        raise t.fail("prefix", f"{_show(prefix)} {problem}; expected {RULE}")
     cfg = MqttConfig(
         host=t.get_str("host", "localhost"),
         port=t.get_int("port", 1883, 1, 65535),
@@ -480,7 +474,7 @@ def parse(text: str, file: str = "<config>") -> Config:
                               locator.find(key, None, None) or locator.find(key, 1, None)
                               or locator.find("", None, key))
 
-    node = _read_node(section("node", True))
+    node, memory_mb = _read_node(section("node", True))
     speed_t = section("speed", False)
     speed_rpm = speed_t.data.get("rpm") if isinstance(speed_t.data.get("rpm"), (int, float)) else None
     source = _read_source(section("source", True), speed_rpm)
@@ -525,7 +519,7 @@ def parse(text: str, file: str = "<config>") -> Config:
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
 
-    return Config(
+    config = Config(
         path=file,
         node=node,
         source=source,
@@ -540,7 +534,13 @@ def parse(text: str, file: str = "<config>") -> Config:
         evidence=evidence,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
+        memory_mb=memory_mb,
     )
+    if config.source.sample_rate > 0:  # a file source's rate comes with the recording: checked then
+        from .memory import check
+
+        check(config, line=locator.find("node", None, "memory_mb"))
+    return config
 
 
 def _read_text(path: str) -> str:

@@ -27,6 +27,7 @@ SEVERITY_ZONES = {
     "group2-flexible": (4.5, 7.1),
 }
 MAX_SAMPLE_RATE = 1_000_000.0
+MEMORY_MB = 256  # default [node] memory_mb: a 512 MB board, with room for the system and a broker
 
 @dataclass(frozen=True)
 class SimulatorConfig:
@@ -204,3 +205,4 @@ class Config:
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"
+    memory_mb: int = MEMORY_MB  # the budget `check` holds the buffers to (config.memory)

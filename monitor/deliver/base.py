@@ -32,15 +32,25 @@ class Sink:
     offline status. `send` must never block the measurement path for long.
 
     `queued` and `dropped` tell how many events wait for the broker and how
-    many were dropped by the queue bound since start; `evidence_queued` and
-    `evidence_dropped` the same for spectra and captures together (a backend
-    without a queue keeps all four 0).
+    many were lost (to the queue bound or a damaged queue file) since start;
+    `held` how many of the waiting ones sit in memory because the disk refused
+    them; `last_event_id` the highest event id the backend has stored, now or
+    before; `evidence_queued` and `evidence_dropped` what `queued` and
+    `dropped` are for events, for spectra and captures together (a backend
+    without a queue keeps all of them 0).
     """
 
     queued = 0
     dropped = 0
+    held = 0
+    last_event_id = 0
     evidence_queued = 0
     evidence_dropped = 0
+
+    def storage_fault(self) -> bool:
+        """True while the backend's disk refuses writes, and once after it
+        found its stored events damaged; a backend without storage: never."""
+        return False
 
     def open(self, online: Payload, offline: Payload) -> None:
         raise NotImplementedError

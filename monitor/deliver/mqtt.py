@@ -14,7 +14,7 @@ Topics and their QoS/retain flags are the table in `base.TOPICS`:
 * ``summary``: QoS 0, dropped while disconnected.
 * ``spectrum`` and ``capture``: QoS 1, handed to the delivery thread, which
   encodes them (a capture: reads its file into the `capture_message`
-  format) and writes them to their own on-disk queues (`DurableQueue`), so
+  format) and writes them to their own on-disk queues (`evidence_queue`), so
   neither the encoding nor the disk write ever holds up the measurement.
   They are published like events, from their queue heads, but only while no
   event waits: events always go first, and a large capture never sits
@@ -40,17 +40,19 @@ import logging
 import sys
 import threading
 import time
-from typing import Any, Deque, Dict, List, Optional, Tuple
+from typing import Any, Deque, Dict, List, Optional, Tuple, Union
 
 import paho.mqtt.client as mqtt
 
 from ..config import MqttConfig
 from ..errors import DeliveryError
-from .payloads import encode
+from . import exposure
 from .base import TOPICS, Payload, Sink, topic
 from .capture_message import pack
 from .mqtt_client import PAHO2, client_id, connack_text, new_client, rc_value, read_password
-from .queue import CAPTURES, SPECTRA, DurableQueue, EventQueue
+from .evidence_queue import CAPTURES, SPECTRA, EvidenceQueue, StoreRefused
+from .payloads import Lines, encode
+from .queue import EventQueue, kept
 
 _BEAT_S = 1.0  # the delivery thread wakes at least this often when idle
 log = logging.getLogger("bandwatch.delivery")
@@ -59,7 +61,22 @@ CLOSE_TIMEOUT = 3.0  # seconds close() waits for the broker to confirm
 WINDOW = 16  # events in flight at once; paho's own limit is set above this
 SPECTRUM_WINDOW = 4  # spectra in flight at once
 CAPTURE_WINDOW = 1  # captures in flight at once (each may be megabytes)
-HANDOFF = 64  # spectra and captures waiting for the delivery thread to store them
+# Spectra and captures waiting in memory for the delivery thread to store
+# them (a refusing disk keeps them here): at most this many, and this many
+# bytes of spectrum lines (a choice of this project; see config/memory.py).
+HANDOFF = 1000
+HANDOFF_BYTES = 8 << 20
+Store = Union[EventQueue, EvidenceQueue]
+
+
+def evidence_bytes(payload: Payload) -> int:
+    """What a spectrum or capture notice holds in memory, roughly: a
+    spectrum's numbers, and a little for the rest."""
+    lines = payload.get("channels")
+    held = 0
+    if isinstance(lines, dict):
+        held = sum(v.values.nbytes for v in lines.values() if isinstance(v, Lines))
+    return held + 2048
 
 
 def _guarded(method: Any) -> Any:
@@ -106,6 +123,8 @@ class MqttSink(Sink):
         password: Optional[str] = None
         if cfg.password_file:
             password = read_password(cfg.password_file)
+        for text in exposure.warnings(cfg):
+            log.warning("%s", text)
 
         # Shared with the callbacks, all under _cond.
         self._cond = threading.Condition(threading.Lock())
@@ -118,11 +137,13 @@ class MqttSink(Sink):
         self._status_due = False
         self._closing: Optional[bytes] = None
         self._close_deadline = 0.0
-        self._handoff: Deque[Tuple[str, str, Payload]] = collections.deque()
+        self._handoff: Deque[Tuple[str, str, Payload, int]] = collections.deque()  # ..., bytes
+        self._handoff_bytes = 0
+        self._evidence_refused = False  # the delivery thread's: retry every beat
 
         # Owned by the delivery thread.
         self._online = False
-        self._inflight: Dict[int, Tuple[DurableQueue, int]] = {}  # mid -> (queue, row id)
+        self._inflight: Dict[int, Tuple[Store, int]] = {}  # mid -> (queue, row id)
         self._offline_mid: Optional[int] = None
         self._offline_sent = False
         self._closed_done = threading.Event()
@@ -137,17 +158,19 @@ class MqttSink(Sink):
         self.published = 0
         self.evidence_published = 0
         self.summaries_dropped = 0
+        self._lost = 0  # events the queue did not take at all
+        self._damage_told = False
         self._thread: Optional[threading.Thread] = None
         self._beat = time.monotonic()
 
         self.queue = EventQueue(cfg.queue_dir, cfg.queue_limit)
-        self.spectra: Optional[DurableQueue] = None
-        self.captures: Optional[DurableQueue] = None
+        self.spectra: Optional[EvidenceQueue] = None
+        self.captures: Optional[EvidenceQueue] = None
         try:
             # Beside the event queue, under its directory lock.
-            self.spectra = DurableQueue(cfg.queue_dir, cfg.spectrum_queue_limit, SPECTRA, "spectrum", lock=False)
-            self.captures = DurableQueue(cfg.queue_dir, 10 ** 9, CAPTURES, "capture",
-                                         limit_bytes=int(cfg.capture_queue_mb * 1e6), lock=False)
+            self.spectra = EvidenceQueue(cfg.queue_dir, SPECTRA, "spectrum", cfg.spectrum_queue_limit)
+            self.captures = EvidenceQueue(cfg.queue_dir, CAPTURES, "capture", 10 ** 9,
+                                          limit_bytes=int(cfg.capture_queue_mb * 1e6))
             self._client = self._make_client(password, reconnect_min, reconnect_max)
         except BaseException:
             self._close_queues()
@@ -178,8 +201,26 @@ class MqttSink(Sink):
 
     @property
     def dropped(self) -> int:
-        """Events lost to the queue bound since start; only grows."""
-        return self.queue.dropped
+        """Events lost to the queue bound or a damaged queue file since
+        start; only grows."""
+        return self.queue.dropped + self._lost
+
+    @property
+    def held(self) -> int:
+        """Events waiting in memory because the disk refused them."""
+        return self.queue.held
+
+    @property
+    def last_event_id(self) -> int:
+        return self.queue.last_event_id
+
+    def storage_fault(self) -> bool:
+        if self.queue.error is not None:
+            return True
+        if self.queue.damage is not None and not self._damage_told:
+            self._damage_told = True
+            return True
+        return False
 
     @property
     def evidence_queued(self) -> int:  # type: ignore[override]
@@ -193,7 +234,7 @@ class MqttSink(Sink):
         assert self.spectra is not None and self.captures is not None
         return self.spectra.dropped + self.captures.dropped
 
-    def _store_of(self, suffix: str) -> DurableQueue:
+    def _store_of(self, suffix: str) -> EvidenceQueue:
         store = self.spectra if suffix == "spectrum" else self.captures
         assert store is not None
         return store
@@ -241,22 +282,29 @@ class MqttSink(Sink):
         if suffix in ("spectrum", "capture"):
             # Encoded and stored by the delivery thread: the measuring
             # thread only hands the payload over.
+            size = evidence_bytes(payload)
             with self._cond:
-                if len(self._handoff) >= HANDOFF:
+                while self._handoff and (len(self._handoff) >= HANDOFF
+                                         or self._handoff_bytes + size > HANDOFF_BYTES):
                     old = self._handoff.popleft()
+                    self._handoff_bytes -= old[3]
                     self._store_of(old[0]).count_lost()
-                    log.warning("MQTT: the delivery thread is behind; a %s was dropped", old[0])
-                self._handoff.append((suffix, name, payload))
+                    log.warning("MQTT: spectra and captures wait for the disk beyond their bound in memory; "
+                                "the oldest %s was dropped", old[0])
+                self._handoff.append((suffix, name, payload, size))
+                self._handoff_bytes += size
                 self._work = True
                 self._cond.notify()
             return
         data = encode(payload).encode("utf-8")
         if suffix == "event":
             try:
-                self.queue.put(name, data, self._event_qos)
+                # A disk that refuses the write is the queue's to handle; this
+                # catches only what should never happen.
+                self.queue.put(name, data, self._event_qos, event_id=payload.get("id"), keep=kept(payload))
             except Exception as err:  # noqa: BLE001 - the measurement path must go on
-                log.error("MQTT: event could not be stored in %s: %s", self.queue.path, err)
-                self.queue.count_lost()
+                log.error("MQTT: event could not be queued in %s: %s", self.queue.path, err)
+                self._lost += 1
                 return
             self._wake()
         elif suffix == "levels":
@@ -302,13 +350,15 @@ class MqttSink(Sink):
         finally:
             self._client.loop_stop()
         self._online = False
-        with self._cond:  # what the delivery thread had no time to store
-            handoff = list(self._handoff)
-            self._handoff.clear()
-        self._store_evidence(handoff)
-        for store in (self.queue, self.spectra, self.captures):
+        if not self._store_evidence():  # what the delivery thread had no time to store
+            with self._cond:
+                left, self._handoff = list(self._handoff), collections.deque()
+            for item in left:
+                self._store_of(item[0]).count_lost()
+            log.error("MQTT: %d spectra and captures the disk refused are lost at shutdown", len(left))
+        for what, store in (("event", self.queue), ("spectrum", self.spectra), ("capture", self.captures)):
             if store is not None and store.count:
-                log.info("MQTT: %d %s(s) stay queued in %s for the next start", store.count, store.what, store.path)
+                log.info("MQTT: %d %s(s) stay queued in %s for the next start", store.count, what, store.path)
         self._close_queues()
         log.info("MQTT: closed")
 
@@ -398,14 +448,14 @@ class MqttSink(Sink):
                     timeout: Optional[float] = _BEAT_S
                     if self._closing is not None:
                         timeout = max(0.0, self._close_deadline - time.monotonic()) + 0.05
-                    if not self._cond.wait(timeout) and self._closing is not None:
+                    # A refusing disk is retried every beat.
+                    if not self._cond.wait(timeout) and (self._closing is not None or self.queue.error
+                                                         or self._evidence_refused):
                         break
                 if self._stop:
                     return
                 notes = list(self._notes)
                 self._notes.clear()
-                handoff = list(self._handoff)
-                self._handoff.clear()
                 self._work = False
                 # Taken now: a newer one arriving meanwhile sets the flag again.
                 levels = self._levels if self._levels_due else None
@@ -413,30 +463,46 @@ class MqttSink(Sink):
                 self._levels_due = self._status_due = False
                 closing = self._closing
             try:
-                self._store_evidence(handoff)
+                self._store_evidence()
                 self._step(notes, levels, status, closing)
             except Exception:  # noqa: BLE001 - keep delivering; the queue keeps the events
                 log.exception("MQTT: delivery step failed")
                 time.sleep(0.5)
 
-    def _store_evidence(self, items: Any) -> None:
-        """Encode spectra and pack captures, and write them to their queues."""
-        for suffix, name, payload in items:
+    def _store_evidence(self) -> bool:
+        """Encode spectra and pack captures, and write them to their queues,
+        oldest first; True when none is left. A disk that refuses a write
+        leaves it (and those after it) waiting in memory for the next try."""
+        while True:
+            with self._cond:
+                if not self._handoff:
+                    self._evidence_refused = False
+                    return True
+                item = self._handoff[0]
+            suffix, name, payload, size = item
             store = self._store_of(suffix)
             try:
                 data = encode(payload).encode("utf-8") if suffix == "spectrum" else pack(payload)
                 store.put(name, data, TOPICS[suffix][0] or 0)
+            except StoreRefused:
+                self._evidence_refused = True
+                return False
             except OSError as err:  # the capture file went away before it was read
                 log.error("MQTT: capture %s cannot be read: %s", payload.get("path"), err.strerror or err)
                 store.count_lost()
             except Exception as err:  # noqa: BLE001 - keep delivering; counted, and the check says so
                 log.error("MQTT: %s could not be stored in %s: %s", suffix, store.path, err)
                 store.count_lost()
+            with self._cond:
+                if self._handoff and self._handoff[0] is item:  # not dropped meanwhile
+                    self._handoff.popleft()
+                    self._handoff_bytes -= size
 
     def _step(
         self, notes: Any, levels: Optional[bytes], status: Optional[bytes], closing: Optional[bytes]
     ) -> None:
-        confirmed: Dict[DurableQueue, List[int]] = {}
+        self.queue.retry()
+        confirmed: Dict[Store, List[int]] = {}
         online = self._online
         for what, mid in notes:
             if what == "connect":
@@ -485,7 +551,7 @@ class MqttSink(Sink):
             if self._fill_from(self.spectra, SPECTRUM_WINDOW):
                 self._fill_from(self.captures, CAPTURE_WINDOW)
 
-    def _fill_from(self, store: DurableQueue, window: int) -> bool:
+    def _fill_from(self, store: Store, window: int) -> bool:
         """Publish from `store` until `window` of its rows are in flight;
         False when the client refused a publish (not connected after all)."""
         busy = {row for queue, row in self._inflight.values() if queue is store}

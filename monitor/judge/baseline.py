@@ -20,11 +20,12 @@ from typing import Dict, Optional, Tuple
 import numpy as np
 
 from ..config import BandConfig
+from ..deliver import private
 
 log = logging.getLogger("bandwatch.baseline")
 
 FILE = "baselines.json"
-_MAX_VALUES = 100_000  # beyond this, every other value is dropped (still a fair median)
+MAX_VALUES = 100_000  # beyond this, every other value is dropped (still a fair median)
 
 
 def key(band: str, channel: str) -> str:
@@ -78,8 +79,8 @@ class BaselineStore:
             return
         tmp = self.path + ".tmp"
         try:
-            os.makedirs(self.directory, exist_ok=True)  # type: ignore[arg-type]
-            with open(tmp, "w", encoding="utf-8") as fh:
+            private.make_dirs(self.directory)  # type: ignore[arg-type]
+            with os.fdopen(private.open_file(tmp, os.O_WRONLY | os.O_TRUNC), "w", encoding="utf-8") as fh:
                 json.dump(self.entries, fh, indent=1, sort_keys=True)
                 fh.flush()
                 os.fsync(fh.fileno())
@@ -122,7 +123,7 @@ class Baseline:
         if self._start is None:
             self._start = t
         if self._count == len(self._values):
-            if self._count >= _MAX_VALUES:
+            if self._count >= MAX_VALUES:
                 self._values[: self._count // 2] = self._values[: self._count : 2]
                 self._count //= 2
             else:

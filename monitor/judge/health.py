@@ -12,7 +12,7 @@ the bands, with the levels `normal` and `fault` (README, What is published):
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | nyquist  | channel | share of the power in the top 10 % below Nyquist         | `nyquist`           |
-| queue    | node    | events dropped by the queue bound since it last emptied  | 1                 |
+| queue    | node    | events lost (queue bound, damaged file) or held in memory (disk refusing writes) | 1 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
 
 Counts come from the source's cumulative counters (`counters()`, where the
@@ -82,7 +82,8 @@ class Health:
             + self.nyquist
             + [self.queue, self.config_check]
         )
-        self._dropped_base = 0
+        self._dropped_seen = 0  # the sink's loss total when last seen
+        self._lost = 0  # events lost since the queue fault was raised
         # Counter snapshots over the window, oldest first; the first stands
         # for "before any sample", so a fresh monitor judges all it has seen.
         self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
@@ -143,13 +144,33 @@ class Health:
             self._update(check, top_i / total_i if total_i > 0 else None, t, out)
         return out
 
-    def on_delivery(self, dropped: int, queued: int, t: float) -> List[Change]:
-        """The sink's drop total (only grows) and its queue length now. The
-        fault stands from the first drop until the queue has emptied."""
+    def on_delivery(self, dropped: int, queued: int, t: float, held: int = 0,
+                    refused: bool = False) -> List[Change]:
+        """The sink's loss total (only grows), the events waiting (on disk and
+        in memory), those held in memory because the disk refused them, and
+        whether the disk refuses writes now.
+
+        The fault is raised by the first loss, held event or refused write;
+        its value is the events lost since it was raised plus those held. It
+        clears once the disk takes writes and holds nothing, and, when events
+        were lost, once the queue has emptied too; the event that clears it
+        carries in `value` how many were lost meanwhile, so the count reaches
+        consumers with the all-clear."""
         out: List[Change] = []
-        if queued == 0:
-            self._dropped_base = dropped
-        self._update(self.queue, float(dropped - self._dropped_base), t, out)
+        self._lost += dropped - self._dropped_seen
+        self._dropped_seen = dropped
+        check = self.queue
+        at_risk = refused or held > 0
+        if check.rule.level == "normal":
+            bad = at_risk or self._lost > 0
+        else:
+            bad = at_risk or (self._lost > 0 and queued > 0)
+        check.value = float(self._lost + held)
+        change = check.rule.update(1.0 if bad else 0.0, t)
+        if change:
+            out.append((check, change))
+            if not bad:
+                self._lost = 0  # reported with the all-clear; a new count starts
         return out
 
     def on_config(self, refused: bool, t: float) -> List[Change]:

@@ -1,13 +1,19 @@
 """Raw samples around an alarm, kept for the analyst.
 
 The last `seconds + after` seconds of samples (in the unit, after scale) sit
-in a fixed ring allocated at start. When a band rises to warning or alarm,
-the capture is named at once (the event carries the name) and written once
-`after` more seconds of samples have arrived: `seconds` before the trigger
-and `after` after it, as a recording (monitor.acquire.recording) in `dir`. Triggers
-while a capture is pending share its file. Only the newest `keep` captures
-are kept. A gap in the samples clears the ring, as it does the spectra: a
-capture never joins samples across one, so it may hold less than asked.
+in a fixed ring allocated at start, as float32: recordings store float32, so
+nothing is lost by it, and it halves the ring. When a band rises to warning
+or alarm, the capture is named at once (the event carries the name) and
+written once `after` more seconds of samples have arrived: `seconds` before
+the trigger and `after` after it, as a recording (monitor.acquire.recording) in
+`dir`. Triggers while a capture is pending share its file. Only the newest
+`keep` captures are kept.
+
+A capture never joins samples across a gap (as the spectra do not): a gap
+while one is pending writes it at once with what arrived before the gap, and
+so does a source that has sent nothing for a while (`cut`, called by the
+pipeline), so a link drop cannot hold a capture back or fill it with samples
+from long after its trigger. The metadata says why a capture was cut short.
 """
 
 import datetime as _dt
@@ -19,9 +25,10 @@ from typing import Any, Callable, Dict, List, Optional, Sequence
 
 import numpy as np
 
-from ..config import CaptureConfig
 from ..acquire.recording import RecordingWriter
-from ..acquire.ring import Ring
+from ..acquire.ring import WrapRing
+from ..config import CaptureConfig
+from ..deliver import private
 
 log = logging.getLogger("bandwatch.capture")
 
@@ -46,7 +53,7 @@ class Capture:
         self.fs = sample_rate
         self.before = int(round(config.seconds * sample_rate))
         self.after = int(round(config.after * sample_rate))
-        self.ring = Ring(len(self.channels), self.before + self.after)
+        self.ring = WrapRing(len(self.channels), self.before + self.after)
         self._end = 0  # stream index one past the newest sample in the ring
         self._pending: Optional[_Pending] = None
         self.written: List[str] = []
@@ -54,57 +61,71 @@ class Capture:
         self.on_write: Optional[Callable[[str, Dict[str, Any]], None]] = None
 
     def feed(self, samples: np.ndarray, end_index: int) -> None:
-        """Samples (n, channels) in the unit, ending just before `end_index`."""
-        start = end_index - samples.shape[0]
+        """Samples shaped (channels, n) in the unit, ending just before `end_index`."""
+        start = end_index - samples.shape[1]
         if self._end and start != self._end:
-            self.ring.clear()  # a gap: never join across it
-        if self._pending is not None and start < self._pending.due <= end_index:
+            self.cut("a gap in the samples")
+            self.ring.clear()  # never join across it
+        pending = self._pending
+        if pending is not None and start < pending.due <= end_index:
             # Split at the due point, so the capture ends exactly `after` past its trigger.
-            cut = self._pending.due - start
-            self._write_ring(samples[:cut], start + cut)
-            self._write(self._pending)
+            split = pending.due - start
+            self._keep(samples[:, :split], pending.due)
             self._pending = None
-            samples, start = samples[cut:], start + cut
-        self._write_ring(samples, end_index)
+            self._write(pending, None)
+            samples = samples[:, split:]
+        self._keep(samples, end_index)
 
-    def _write_ring(self, samples: np.ndarray, end_index: int) -> None:
-        cap = self.ring.capacity
-        self.ring.write(samples[-cap:] if samples.shape[0] > cap else samples)
+    def _keep(self, samples: np.ndarray, end_index: int) -> None:
+        self.ring.write(samples)
         self._end = end_index
 
     def trigger(self, stream_index: int, event: Dict[str, Any]) -> str:
-        """A band rose at `stream_index`; returns the capture's file name."""
+        """A band rose at `stream_index` (the end of the samples fed so far);
+        returns the capture's file name."""
         if self._pending is None:
             stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
             label = re.sub(r"[^A-Za-z0-9_-]", "_", f"{event.get('name')}-{event.get('channel')}")
             name = f"{self.node}-{stamp}-event{event.get('id')}-{label}{_SUFFIX}"
             self._pending = _Pending(name, stream_index, stream_index + self.after)
-        self._pending.events.append({k: event.get(k) for k in ("id", "name", "channel", "level", "stream_s")})
-        return self._pending.name
+        pending = self._pending
+        pending.events.append({k: event.get(k) for k in ("id", "name", "channel", "level", "stream_s")})
+        if pending.due <= self._end:  # after = 0: nothing more to wait for
+            self._pending = None
+            self._write(pending, None)
+        return pending.name
+
+    def cut(self, reason: str) -> None:
+        """Write a pending capture now with what has arrived: the samples it
+        waits for will not come in time (a gap, a silent source, shutdown)."""
+        if self._pending is not None:
+            pending, self._pending = self._pending, None
+            self._write(pending, reason)
 
     def flush(self) -> None:
         """Write a pending capture with what has arrived (on shutdown)."""
-        if self._pending is not None:
-            self._write(self._pending)
-            self._pending = None
+        self.cut("shutdown")
 
-    def _write(self, pending: _Pending) -> None:
+    def _write(self, pending: _Pending, cut: Optional[str]) -> None:
         first = max(pending.trigger - self.before, self._end - self.ring.count)
         n = self._end - first
         samples = self.ring.latest(n).T if n > 0 else np.zeros((0, len(self.channels)))
         path = os.path.join(self.config.dir, pending.name)
         start = _dt.datetime.now(_dt.timezone.utc) - _dt.timedelta(seconds=n / self.fs)
         extra = {"capture": {"trigger_s": round((pending.trigger - first) / self.fs, 6),
-                             "first_stream_s": round(first / self.fs, 6), "events": pending.events}}
+                             "after_s": round((self._end - pending.trigger) / self.fs, 6),
+                             "first_stream_s": round(first / self.fs, 6), "cut": cut,
+                             "events": pending.events}}
         try:
-            os.makedirs(self.config.dir, exist_ok=True)
+            private.make_dirs(self.config.dir)
+            private.touch(path)  # 0600 before a sample is in it
             with RecordingWriter(path, self.fs, self.channels, self.unit, start_time=start, extra=extra) as w:
                 w.write(samples)
         except OSError as exc:
             log.error("cannot write the capture %s: %s", path, exc.strerror or exc)
             return
-        log.info("capture written: %s (%.3g s, trigger at %.3g s)", path, n / self.fs,
-                 (pending.trigger - first) / self.fs)
+        log.info("capture written: %s (%.3g s, trigger at %.3g s%s)", path, n / self.fs,
+                 (pending.trigger - first) / self.fs, f"; cut short by {cut}" if cut else "")
         self.written.append(path)
         self._prune()
         if self.on_write is not None:

@@ -15,6 +15,7 @@ from typing import Callable, Dict, List, Optional, Tuple
 import numpy as np
 
 from ..analyse.bands import BandBank
+from ..config import memory
 from ..judge.baseline import Baseline, BaselineStore
 from .capture import Capture
 from ..analyse.units import quantity_unit
@@ -87,6 +88,8 @@ class Monitor:
         if not self.fs > 0:
             raise ValueError(f"the {self.source.describe()} source gives sample_rate={self.fs!r}; "
                              "a monitor needs the rate before it is built")
+        if cfg.source.sample_rate <= 0:  # the rate came with the recording: the budget is checked now
+            memory.check(cfg, self.fs)
         self.scale = np.asarray(cfg.source.scale, dtype=float)
         self._ring_scale = self.scale.reshape(-1, 1)  # one factor per ring row
         self.capture: Optional[Capture] = None
@@ -268,7 +271,10 @@ class Monitor:
                     if self.source.ended:
                         break
                     quiet = self.clock() - self._last_sample_at
-                    self._emit_health(self.health.on_quiet(quiet, self._stream_s))
+                    if self.capture is not None and quiet >= self.config.health.stale:
+                        self.capture.cut(f"no samples for {quiet:.3g} s")
+                    self._emit_health(self.health.on_quiet(quiet, self._stream_s)
+                                      + self._on_delivery(self._stream_s))
                     continue
                 self._last_sample_at = self.clock()
                 self.feed(block)
@@ -318,13 +324,15 @@ class Monitor:
             block.samples, self._samples, block.lost, self._stream_s, block.full_scale, block.timestamp_us, counters
         ))
         samples = block.samples
-        if self.capture is not None:
-            self.capture.feed(samples * self.scale, self._samples + n)
         start = 0
         total = samples.shape[0]
         while start < total:
             take = min(total - start, self._pending)
             self.ring.write(samples[start : start + take], self._ring_scale)
+            if self.capture is not None:
+                # Piece by piece, as scaled in the ring: a trigger in the
+                # frame below then falls exactly at the capture's newest sample.
+                self.capture.feed(self.ring.latest(take), self._samples + take)
             start += take
             self._samples += take
             self._pending -= take
@@ -347,9 +355,7 @@ class Monitor:
         self._rises = []
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
-        sink = self.sink  # events, spectra and captures: one `queue` check for all that can be lost
-        changed |= self._emit_health(self.health.on_delivery(sink.dropped + sink.evidence_dropped,
-                                                             sink.queued + sink.evidence_queued, stream_s), result)
+        changed |= self._emit_health(self._on_delivery(stream_s), result)
         if changed or self.results == 1:
             self.sink.send("levels", self._levels_payload(result))
         if stream_s >= self._next_summary:
@@ -366,6 +372,11 @@ class Monitor:
 
     def _capture_written(self, path: str, meta: Payload) -> None:
         self.sink.send("capture", capture_notice(self.node, self._stream_s, path, meta))
+
+    def _on_delivery(self, t: float) -> List[Change]:
+        sink = self.sink  # events, spectra and captures: one `queue` check for all that can be lost
+        return self.health.on_delivery(sink.dropped + sink.evidence_dropped, sink.queued + sink.evidence_queued, t,
+                                       sink.held, sink.storage_fault())
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         # The spectrum describes its samples as a whole: the speed read from

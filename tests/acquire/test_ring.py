@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from monitor.acquire.ring import Ring
+from monitor.acquire.ring import Ring, WrapRing
 
 
 def test_keeps_the_newest_samples_in_order():
@@ -32,3 +32,18 @@ def test_clear_and_limits():
         ring.latest(1)
     with pytest.raises(ValueError, match="n=9"):
         ring.write(np.ones((9, 1)))
+
+
+def test_wrap_ring_keeps_the_newest_in_exactly_its_capacity():
+    ring = WrapRing(2, 10)
+    assert ring._buf.shape == (2, 10) and ring._buf.dtype == np.float32
+    data = np.arange(200, dtype=float).reshape(2, 100)
+    for start in range(0, 100, 7):
+        ring.write(data[:, start : start + 7])
+        got = min(start + 7, 100)
+        assert np.array_equal(ring.latest(min(got, 10)), data[:, max(0, got - 10) : got])
+    ring.write(data[:, :25])  # longer than the ring: its newest samples
+    assert np.array_equal(ring.latest(10), data[:, 15:25])
+    ring.clear()
+    with pytest.raises(ValueError, match="n=1"):
+        ring.latest(1)

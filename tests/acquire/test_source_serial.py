@@ -19,6 +19,7 @@ from conftest import need_program
 from monitor.config import SourceConfig
 from monitor.acquire.decoders.frame import encode_frame
 from monitor.acquire.sources import open_source
+from sockets import wait_until
 
 RATE = 1000.0
 N = 8  # samples per channel per frame
@@ -35,15 +36,6 @@ def serial_config(device: str) -> SourceConfig:
 def frame_samples(value: int) -> np.ndarray:
     x = np.arange(N) + value
     return np.stack([x, -x], axis=1)
-
-
-def wait_until(check, seconds: float) -> bool:
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if check():
-            return True
-        time.sleep(0.01)
-    return check()
 
 
 def test_frames_written_on_a_pty_arrive_decoded():

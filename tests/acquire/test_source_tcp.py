@@ -10,7 +10,6 @@ sending.
 import logging
 import os
 import socket
-import struct
 import threading
 import time
 
@@ -21,6 +20,7 @@ from monitor.config import SourceConfig
 from monitor.acquire.decoders.frame import encode_frame
 from monitor.errors import SourceError
 from monitor.acquire.sources import open_source
+from sockets import listener, reset, wait_until
 
 RATE = 10240.0
 N = 32  # samples per channel per frame
@@ -55,30 +55,6 @@ def collect(source, samples: int, seconds: float = 2.0) -> list:
         if block is not None:
             blocks.append(block)
     return blocks
-
-
-def wait_until(check, seconds: float) -> bool:
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if check():
-            return True
-        time.sleep(0.01)
-    return check()
-
-
-def listener(port: int = 0) -> socket.socket:
-    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    sock.bind(("127.0.0.1", port))
-    sock.listen(1)
-    sock.settimeout(5.0)
-    return sock
-
-
-def reset(sock: socket.socket) -> None:
-    """Close with RST instead of FIN (SO_LINGER on, linger time 0)."""
-    sock.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
-    sock.close()
 
 
 @pytest.fixture

@@ -16,6 +16,7 @@ from monitor.config import SourceConfig
 from monitor.acquire.decoders.frame import encode_frame
 from monitor.errors import SourceError
 from monitor.acquire.sources import open_source
+from sockets import wait_until
 
 RATE = 1000.0
 N = 16
@@ -41,15 +42,6 @@ def collect(source, samples: int, seconds: float = 2.0) -> list:
         if block is not None:
             blocks.append(block)
     return blocks
-
-
-def wait_until(check, seconds: float) -> bool:
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if check():
-            return True
-        time.sleep(0.01)
-    return check()
 
 
 @pytest.fixture

@@ -35,7 +35,7 @@ from monitor.service.monitor import Monitor
 from monitor.acquire.recording import RecordingWriter
 from monitor.acquire.sources.memory import ArraySource
 from mqtt_broker import Broker, make_certs, make_client, wait_for
-from rig import CAPTURE_CONFIG, FS, scenario
+from rig import CAPTURE, FS, scenario
 from test_replay import need_matplotlib
 
 pytestmark = pytest.mark.filterwarnings("ignore::scipy.io.wavfile.WavFileWarning")
@@ -78,7 +78,7 @@ def mqtt_config(broker, tmp_path, **kw):
 
 def node_config(tmp_path):
     # The capture test's band and captures, keeping every capture file.
-    return parse(CAPTURE_CONFIG.format(dir=tmp_path / "captures").replace("keep = 2", "keep = 20"))
+    return parse(CAPTURE.format(dir=tmp_path / "captures").replace("keep = 2", "keep = 20"))
 
 
 def run_node(config, mqtt_cfg, x, block=300):
@@ -252,9 +252,9 @@ def test_the_capture_queue_keeps_its_bound_and_says_so_without_touching_events(t
     bands = [e for e in sink.of("event") if e["kind"] == "band"]
     assert inner.dropped == 0  # every event kept
     assert inner.captures.closed
-    from monitor.deliver.queue import CAPTURES, DurableQueue
+    from monitor.deliver.evidence_queue import CAPTURES, EvidenceQueue
 
-    with DurableQueue(cfg.queue_dir, 10 ** 9, CAPTURES, "capture", lock=False) as kept:
+    with EvidenceQueue(cfg.queue_dir, CAPTURES, "capture", 10 ** 9) as kept:
         assert kept.count == 2 and kept.bytes <= 250_000
     with broker:
         out = tmp_path / "analyst"

@@ -16,7 +16,7 @@ from monitor.config import parse
 from monitor.deliver.filing import Filer, Refused, safe_name
 from monitor.deliver.payloads import encode
 from monitor.acquire.recording import RecordingWriter
-from rig import CAPTURE_CONFIG, run, scenario
+from rig import BASE, TONE_BAND, run, scenario
 
 ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
@@ -88,7 +88,7 @@ def test_events_are_filed_once_across_restarts(tmp_path):
 
 
 def test_the_trend_has_one_row_per_value_of_each_summary(tmp_path):
-    config = parse(CAPTURE_CONFIG.split("[capture]")[0])  # the tone band alone
+    config = parse(BASE + TONE_BAND)
     _, sink = run(config, scenario(25.0, [(10.0, 2.0)]))
     summaries = sink.of("summary")
     filer = Filer(str(tmp_path))

@@ -11,18 +11,9 @@ import scipy.signal
 from monitor.config import parse
 from monitor.deliver.payloads import Lines, encode
 from monitor.deliver.spectrum_payload import line_count
-from rig import BASE, FS, run
+from rig import BASE, FS, TONE_BAND, run
 
-RISE = """
-[[band]]
-name = "tone"
-channel = "x"
-hz = [40.0, 60.0]
-quantity = "acceleration"
-warning = 1.0
-alarm = 3.0
-delay = 0.0
-[[band]]
+RISE = TONE_BAND + """[[band]]
 name = "vel"
 channel = "y"
 hz = [20.0, 200.0]
