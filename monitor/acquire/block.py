@@ -29,9 +29,16 @@ class Block(NamedTuple):
     (32767 for int16), when the samples came as integers: a sample at or
     beyond it in magnitude is clipped.
     `timestamp_us` is the sensor's time of the first sample, when it sent one.
+    A block with no samples carries only a loss: the source dropped a block
+    that held NaN or infinite values.
+    `restart`: the sender's sequence started afresh just before these (it
+    jumped back, or further ahead than the decoder's `max_gap`), so how much
+    is missing is unknown; `lost` is then only a lower bound (1) that marks
+    the break, and the stream source puts the time between arrivals there.
     """
 
     samples: np.ndarray
     lost: int = 0
     full_scale: Optional[float] = None
     timestamp_us: Optional[int] = None
+    restart: bool = False

@@ -4,7 +4,9 @@ Each frame of `size` samples (all channels at once) has its mean removed, is
 windowed and transformed; its one-sided power goes into a ring of the last
 `averages` frames. A result is the mean of that ring: exactly what
 scipy.signal.welch returns for the same samples, window, segment length and
-overlap with detrend="constant".
+overlap with detrend="constant". Frames need not be contiguous: after a gap
+in the samples the ring keeps the power of the frames before it, so the
+average is that of the last `averages` gap-free frames.
 
 Every spectral quantity comes from `Spectrum`, one averaged one-sided power
 spectral density with its scale factors attached: the power spectrum, the
@@ -72,7 +74,7 @@ class SpectralStage:
         self._frame = np.empty((channels, size))
 
     def reset(self) -> None:
-        """Forget every frame, after a gap: no result spans one."""
+        """Forget every frame (after an outage longer than a result's span)."""
         self._filled = 0
         self._next = 0
 

@@ -26,7 +26,9 @@ memory, as a node would that starts with the recording.
 
 Gaps noted in a bandwatch recording (`"lost"` in its metadata, see
 `record.py`) are put back as the losses they were, so a replay's stream
-times and results match the live run's.
+times and results match the live run's. A block of the recording holding
+NaN or infinity is dropped as the file source drops it (a gap, counted by
+the `corrupt` check), and the table says how many were.
 
 What is kept and the table are in `replay_tally.py`: the trend history for
 the plot stays bounded however long the recording is, and the table's
@@ -100,7 +102,8 @@ class _ReplaySource(Source):
         self.gaps = dict(gaps)
         self._gap_at = collections.deque(sorted(gaps))  # indices still ahead, first first
         self.max_block = max(1, max_block)
-        self.position = 0  # samples of the file handed out
+        self.position = 0  # samples of the file handed out or dropped
+        self.dropped = 0  # of those, dropped for NaN or infinity
         self.sample_rate = inner.sample_rate
         self._pending: Optional[Block] = None
 
@@ -110,22 +113,39 @@ class _ReplaySource(Source):
     def _close(self) -> None:
         self.inner.close()
 
+    def counters(self) -> Dict[str, int]:
+        return self.inner.counters()  # the file source's blocks, not these pieces of them
+
     def _read(self, timeout: float) -> Optional[Block]:
+        lost = 0
         if self._pending is None or not len(self._pending.samples):
             self._pending = self.inner.read(timeout)
             if self._pending is None:
                 self.ended = self.inner.ended
                 return None
+            if self._pending.lost:
+                lost = self._dropped(self._pending.lost)
         pending = self._pending
         n = min(len(pending.samples), self.max_block)
-        lost = 0
         if self._gap_at and self._gap_at[0] == self.position:
-            lost = self.gaps.pop(self._gap_at.popleft())
+            lost += self.gaps.pop(self._gap_at.popleft())
         if self._gap_at and self._gap_at[0] < self.position + n:
             n = self._gap_at[0] - self.position  # a gap starts a block of its own
         self._pending = pending._replace(samples=pending.samples[n:])
         self.position += n
         return pending._replace(samples=pending.samples[:n], lost=lost)
+
+    def _dropped(self, count: int) -> int:
+        """`count` file samples the file source dropped (a block holding NaN
+        or infinity): skipped, with any gap noted among them; returns the
+        samples lost there."""
+        end = self.position + count
+        lost = count
+        while self._gap_at and self._gap_at[0] < end:
+            lost += self.gaps.pop(self._gap_at.popleft())
+        self.position = end
+        self.dropped += count
+        return lost
 
 
 class _EventSink(Sink):
@@ -244,7 +264,8 @@ def replay(
         source.close()
     if progress is not None:
         progress.clear()
-    return Replayed(recording, cfg, fs, frames, source.position, source.lost, len(gaps) - len(source.gaps),
+    return Replayed(recording, cfg, fs, frames, source.position - source.dropped, source.lost - source.dropped,
+                    len(gaps) - len(source.gaps), source.dropped, source.inner.rejected,
                     tally, sink.counts, history, worst[0], source.position < frames)
 
 

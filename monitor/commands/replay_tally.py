@@ -131,6 +131,8 @@ class Replayed:
     played: int  # file samples taken through the pipeline
     lost: int  # samples put back from the gap notes
     gaps: int
+    dropped: int  # file samples dropped in blocks holding NaN or infinity
+    dropped_blocks: int
     tally: Tally
     events: Dict[Tuple[str, str, Optional[str]], int]
     history: Optional[History]
@@ -158,8 +160,11 @@ def write_table(rep: Replayed, err: TextIO) -> None:
     if rep.gaps:
         head += f"; {rep.lost} lost samples put back in {rep.gaps} gap(s)"
     err.write(head + "\n")
+    if rep.dropped_blocks:
+        err.write(f"{rep.dropped_blocks} block(s) holding NaN or infinity dropped ({rep.dropped} samples), "
+                  "each a gap, counted by the corrupt check\n")
     if rep.stopped:
-        err.write(f"stopped after {rep.played / fs:.6g} of {rep.seconds:.6g} s\n")
+        err.write(f"stopped after {(rep.played + rep.dropped) / fs:.6g} of {rep.seconds:.6g} s\n")
     if t.results == 0:
         span = rep.config.spectrum.span / fs
         err.write(f"no result: one needs {span:.6g} s of samples without a gap\n")

@@ -373,6 +373,9 @@ def _read_health(t: Table) -> HealthConfig:
         flatline=t.get_float("flatline", 5.0, lo=0.0, lo_open=True, hi=86400.0),
         rate=t.get_float("rate", 0.01, lo=0.0, lo_open=True, hi=1.0),
         nyquist=t.get_float("nyquist", 0.2, lo=0.0, lo_open=True, hi=1.0),
+        hysteresis=t.get_float("hysteresis", 0.2, lo=0.0, hi=0.99),
+        hold=t.get_float("hold", 10.0, lo=0.0, hi=86400.0),
+        blind=t.get_float("blind", None, lo=0.0, lo_open=True, hi=86400.0) if t.has("blind") else None,
     )
     t.finish()
     return health

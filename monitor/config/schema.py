@@ -147,6 +147,9 @@ class HealthConfig:
     flatline: float = 5.0  # s without any change on a channel
     rate: float = 0.01  # relative disagreement of timestamps with sample_rate
     nyquist: float = 0.2  # share of power in the top 10 % below Nyquist
+    hysteresis: float = 0.2  # a fault clears below limit * (1 - hysteresis)
+    hold: float = 10.0  # s below that before a fault clears
+    blind: Optional[float] = None  # s of samples without a result; None: from [spectrum]
 
 
 @dataclass(frozen=True)

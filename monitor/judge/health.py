@@ -12,8 +12,14 @@ the bands, with the levels `normal` and `fault` (README, What is published):
 | flatline | channel | seconds of stream in which the channel did not change    | `flatline`        |
 | rate     | source  | relative disagreement of frame timestamps with sample_rate | `rate`          |
 | nyquist  | channel | share of the power in the top 10 % below Nyquist         | `nyquist`           |
+| blind    | source  | seconds of samples received since the last result        | `blind`, or from the span |
 | queue    | node    | events lost (queue bound, damaged file) or held in memory (disk refusing writes) | 1 |
 | config   | node    | 1 while the last reload was refused, else 0              | 1                 |
+
+Every check raises its fault as soon as the value reaches the limit (nyquist
+after 2 s), and clears it only once the value has stayed below
+limit * (1 - hysteresis) for `hold` seconds of stream time, so a value that
+hovers at its limit gives one fault, not a storm.
 
 Counts come from the source's cumulative counters (`counters()`, where the
 source has them), differenced over a sliding window of stream time.
@@ -33,6 +39,9 @@ from ..analyse.spectrum import Spectrum
 # Counter snapshots are taken at most this often (stream seconds), which
 # bounds the window's memory whatever the block size.
 _SNAPSHOT_S = 0.1
+# Without a configured `blind`, the check allows twice what a result needs
+# from a standing start, and never less than this (seconds).
+BLIND_MIN_S = 5.0
 # Timestamps must span this much stream time before the rate is judged, so
 # that arrival jitter of single frames does not count.
 _RATE_BASELINE_S = 5.0
@@ -54,14 +63,15 @@ Change = Tuple[Check, Tuple[str, str]]
 class Health:
     """Every health check of one monitor, fed by the pipeline."""
 
-    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float) -> None:
+    def __init__(self, config: HealthConfig, channels: Sequence[str], sample_rate: float, span: int = 0) -> None:
+        """`span`: samples one result covers, for the default `blind` limit."""
         self.config = config
         self.channels = list(channels)
         self.fs = sample_rate
 
-        def check(name: str, channel: Optional[str], unit: str, limit: float, hysteresis: float = 0.0,
-                  delay: float = 0.0) -> Check:
-            return Check(name, channel, unit, LevelMachine([("fault", limit)], hysteresis, delay))
+        def check(name: str, channel: Optional[str], unit: str, limit: float, delay: float = 0.0) -> Check:
+            rule = LevelMachine([("fault", limit)], config.hysteresis, delay, config.hold)
+            return Check(name, channel, unit, rule)
 
         self.stale = check("stale", None, "s", config.stale)
         self.gap = check("gap", None, "count", 1.0)
@@ -69,9 +79,12 @@ class Health:
         self.rate = check("rate", None, "share", config.rate)
         self.clipping = [check("clipping", c, "share", config.clipping) for c in self.channels]
         self.flatline = [check("flatline", c, "s", config.flatline) for c in self.channels]
-        # Nyquist strip: a little hysteresis and delay, since the share of a noisy
-        # spectrum wavers around any limit.
-        self.nyquist = [check("nyquist", c, "share", config.nyquist, 0.2, 2.0) for c in self.channels]
+        # Nyquist strip: a delay before the fault too, since the share of a
+        # noisy spectrum wavers from one result to the next.
+        self.nyquist = [check("nyquist", c, "share", config.nyquist, 2.0) for c in self.channels]
+        # Samples arrive but give no result (gaps closer than a frame, say).
+        blind = config.blind if config.blind is not None else max(BLIND_MIN_S, 2.0 * span / sample_rate)
+        self.blind = check("blind", None, "s", blind)
         self.queue = check("queue", None, "count", 1.0)
         self.config_check = check("config", None, "count", 1.0)
         self.checks: List[Check] = (
@@ -80,10 +93,12 @@ class Health:
             + self.flatline
             + [self.rate]
             + self.nyquist
-            + [self.queue, self.config_check]
+            + [self.blind, self.queue, self.config_check]
         )
+        self._unmeasured = 0  # samples received since the last result
         self._dropped_seen = 0  # the sink's loss total when last seen
         self._lost = 0  # events lost since the queue fault was raised
+        self._refused = 0.0  # the config check's value, fed on with every block
         # Counter snapshots over the window, oldest first; the first stands
         # for "before any sample", so a fresh monitor judges all it has seen.
         self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
@@ -124,6 +139,10 @@ class Health:
         `start_index`; `t` is the stream time of its last sample."""
         out: List[Change] = []
         self._update(self.stale, 0.0, t, out)
+        # Fed on so that a fault can clear once its hold time has passed.
+        self._update(self.config_check, self._refused, t, out)
+        self._unmeasured += raw.shape[0]
+        self._update(self.blind, self._unmeasured / self.fs, t, out)
         totals: Dict[str, float] = dict(counters or {})
         self._count_block(raw, lost, full_scale, totals)
         self._windowed(t, totals, lost > 0, out)
@@ -132,7 +151,10 @@ class Health:
         return out
 
     def on_spectrum(self, spectrum: Spectrum, t: float) -> List[Change]:
+        """A result's spectrum."""
         out: List[Change] = []
+        self._unmeasured = 0
+        self._update(self.blind, 0.0, t, out)
         if self._top_line is None:
             lines = spectrum.psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.
@@ -176,7 +198,8 @@ class Health:
     def on_config(self, refused: bool, t: float) -> List[Change]:
         """The outcome of a reload: refused (a bad file) or taken."""
         out: List[Change] = []
-        self._update(self.config_check, 1.0 if refused else 0.0, t, out)
+        self._refused = 1.0 if refused else 0.0
+        self._update(self.config_check, self._refused, t, out)
         return out
 
     # ------------------------------------------------------------ details

@@ -2,7 +2,7 @@
 
 A level is raised when the value has stayed at or above its limit for
 `delay` seconds, and lowered when it has stayed below limit * (1 - hysteresis)
-for `delay` seconds. Time is stream time, counted from samples, never the
+for `hold` seconds (bands: hold = delay). Time is stream time, counted from samples, never the
 wall clock. A value that cannot be measured (None or NaN) changes nothing and
 restarts every timer, since "stayed above" is then unknown.
 """
@@ -29,9 +29,11 @@ class LevelMachine:
         limits: Sequence[Tuple[str, Optional[float]]],
         hysteresis: float,
         delay: float,
+        hold: Optional[float] = None,
     ) -> None:
         self.hysteresis = hysteresis
         self.delay = delay
+        self.hold_s = delay if hold is None else hold
         self.index = 0  # 0 = normal, i = self.limits[i - 1]
         self.set_limits(limits)
 
@@ -92,7 +94,7 @@ class LevelMachine:
         if new == self.index:
             while new > 0:
                 since = self._below[new - 1]
-                if since is None or t - since < self.delay - _EPS:
+                if since is None or t - since < self.hold_s - _EPS:
                     break
                 new -= 1
         if new == self.index:

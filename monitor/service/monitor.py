@@ -141,7 +141,7 @@ class Monitor:
         # could never change anything), so most values skip that call.
         self._learners = [base if b.baseline is not None else None
                           for (b, _), base in zip(self.bank.pairs, self.baselines)]
-        self.health = Health(cfg.health, cfg.source.channels, self.fs)
+        self.health = Health(cfg.health, cfg.source.channels, self.fs, cfg.spectrum.span)
         if previous:
             keyed = [((b.name, self.config.source.channels[ch]), rule)
                      for (b, ch), rule in zip(self.bank.pairs, self.band_rules)]
@@ -310,12 +310,16 @@ class Monitor:
     def feed(self, block: Block) -> None:
         """Take one block of raw samples through every stage."""
         if block.lost:
-            # No frame may span a gap: start the ring and the average afresh.
+            # No frame may span a gap, so the ring fills afresh; the power of
+            # the frames already averaged stays, so the gap costs one frame.
+            # An outage longer than a result's span restarts the average:
+            # spectra from before it describe another moment of the machine.
             self._samples += block.lost
             self.ring.clear()
-            self.stage.reset()
-            if self.envelope is not None:
-                self.envelope.reset()
+            if block.lost >= self.config.spectrum.span:
+                self.stage.reset()
+                if self.envelope is not None:
+                    self.envelope.reset()
             self._pending = self.config.spectrum.size
         n = block.samples.shape[0]
         counters = self.source.counters()
@@ -441,6 +445,6 @@ class Monitor:
 
     def _summary_payload(self, result: Result) -> Payload:
         # Called within the frame that made `result`: the ring still holds
-        # exactly the samples the result covers.
-        stats = time_stats(self.ring.latest(self.config.spectrum.span))
+        # the samples the result covers (since the last gap, if one was nearer).
+        stats = time_stats(self.ring.latest(min(self.ring.count, self.config.spectrum.span)))
         return self.reporter.summary(result, stats, self.band_rules, self.baselines)

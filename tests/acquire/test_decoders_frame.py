@@ -58,6 +58,16 @@ def decode_all(data: bytes, channels: int, chunk: int = 0) -> List[Block]:
     return out
 
 
+def feed_in_pieces(decoder, stream: bytes, cuts: List[int]) -> List[Block]:
+    """Feed `stream` cut into pieces of the sizes in `cuts`, then the rest."""
+    out: List[Block] = []
+    at = 0
+    for size in cuts:
+        out += decoder.feed(stream[at : at + size])
+        at += size
+    return out + decoder.feed(stream[at:])
+
+
 # ------------------------------------------------------------- reference checks
 
 
@@ -168,12 +178,7 @@ def streams(draw):
 def test_every_intact_frame_decoded_once_in_order(case, cuts):
     channels, stream, blocks, garbage = case
     decoder = make_decoder("frame", channels)
-    out: List[Block] = []
-    at = 0
-    for size in cuts:
-        out += decoder.feed(stream[at : at + size])
-        at += size
-    out += decoder.feed(stream[at:])
+    out = feed_in_pieces(decoder, stream, cuts)
     assert len(out) == len(blocks)
     for got, want in zip(out, blocks):
         assert np.array_equal(got.samples, want)
@@ -290,7 +295,37 @@ def test_wraparound_is_not_a_gap():
     assert [d.lost for d in out] == [0, 0, 0, 0]
     assert decoder.counters["gaps"] == 0
     out = decoder.feed(small(0xFFFFFFFF))  # 2 -> 0xFFFFFFFF: backwards, a restart
-    assert decoder.counters["gaps"] == 1 and out[0].lost == 2
+    assert decoder.counters["gaps"] == 0 and decoder.counters["restarts"] == 1
+    assert out[0].restart and out[0].lost == 1
+
+
+def test_a_backward_jump_restarts_sequence_tracking():
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(small(500) + small(501) + small(7) + small(8) + small(10))
+    # The sender started again at 7: no gap is measured from 501 to 7, and
+    # 7 -> 8 -> 10 is tracked afresh (frame 9 missing: 2 samples).
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (0, False), (1, True), (0, False), (2, False)]
+    assert (decoder.counters["restarts"], decoder.counters["gaps"], decoder.counters["lost_samples"]) == (1, 1, 2)
+
+
+def test_a_jump_beyond_max_gap_is_a_restart_not_a_billion_lost_samples():
+    decoder = make_decoder("frame", 1)
+    decoder.max_gap = 100  # the most samples per channel a jump may stand for
+    out = decoder.feed(small(0) + small(50) + small(1_000_000_000) + small(1_000_000_001))
+    # 0 -> 50 is 49 frames of 2 samples, 98 <= 100: a gap. The jump to 1e9 is not.
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (98, False), (1, True), (0, False)]
+    assert decoder.counters["lost_samples"] == 98 and decoder.counters["restarts"] == 1
+    decoder.max_gap = None  # no bound: the sequence is taken at its word
+    out = decoder.feed(small(1_000_000_101))
+    assert out[0].lost == 99 * 2 and not out[0].restart
+
+
+def test_a_restart_on_a_dropped_frame_is_carried_to_the_next_one():
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(small(40) + hand_frame(np.ones((2, 3)), 3) + small(4))
+    # The wrong-channel frame 3 restarted the sequence; frame 4 carries it.
+    assert [(d.lost, d.restart) for d in out] == [(0, False), (2, True)]
+    assert decoder.counters["mismatched"] == 1 and decoder.counters["restarts"] == 1
 
 
 def test_reset_forgets_the_sequence_and_partial_input():
@@ -357,6 +392,208 @@ def test_small_feeds_behind_a_false_header(chunk):
         out += decoder.feed((false + frames)[at : at + chunk])
     assert [d.samples[0, 0] for d in out] == list(range(20))
     assert decoder.counters["corrupt_bytes"] == len(false)
+
+
+# ---------------------------------------------------------- hostile input
+#
+# False headers that nest and overlap, headers in range with a bad CRC, sync
+# floods and random bytes. The decoder is compared with `reference_decode`, a
+# plain transcription of the rules (README, "Decoding"): scan for the sync;
+# take a frame whose header is in range and whose CRC matches; otherwise step
+# one byte past the sync; a header in range whose frame has not fully arrived
+# waits, unless a complete frame with a good CRC starts after it.
+
+NESTED = b"\xa7\x4d\x01\x03\x10\x00\x00\x10"  # in range, claims 16 ch x 4096 float32; every 8 bytes
+
+
+def false_header(stype: int, channels: int, n: int, flags: int = 0) -> bytes:
+    """The first 8 bytes of a header in range: repeated, each copy's sequence
+    field is the next copy's start, so a sync comes every 8 bytes."""
+    return b"\xa7\x4d" + struct.pack("<BBBBH", 1, stype, channels, flags, n)
+
+
+def reference_decode(stream: bytes, channels: int):
+    """(sample blocks, corrupt_frames, corrupt_bytes, bytes held) by the rules, one sync at a time."""
+
+    def check(i):
+        if len(stream) - i < 12:
+            return "incomplete", 0
+        version, stype, nch, flags, n = struct.unpack_from("<BBBBH", stream, i + 2)
+        if version != 1 or stype not in DTYPES or not 1 <= nch <= 16 or flags not in (0, 1) or not 1 <= n <= 4096:
+            return "bad", 0
+        size = 12 + 8 * flags + n * nch * np.dtype(DTYPES[stype]).itemsize + 4
+        if len(stream) - i < size:
+            return "incomplete", size
+        crc = struct.unpack_from("<I", stream, i + size - 4)[0]
+        return ("good" if zlib.crc32(stream[i + 2 : i + size - 4]) == crc else "bad"), size
+
+    blocks, frames, garbage, pos = [], 0, 0, 0
+    while True:
+        i = stream.find(b"\xa7\x4d", pos)
+        if i < 0:
+            keep = len(stream) - 1 if len(stream) > pos and stream[-1] == 0xA7 else len(stream)
+            return blocks, frames, garbage + keep - pos, len(stream) - keep
+        garbage += i - pos
+        state, size = check(i)
+        if state == "incomplete" and size:
+            later = i + 1
+            while state == "incomplete":
+                j = stream.find(b"\xa7\x4d", later)
+                if j < 0:
+                    break
+                if check(j)[0] == "good":
+                    state = "bad"
+                later = j + 1
+        if state == "incomplete":
+            return blocks, frames, garbage, len(stream) - i
+        if state == "bad":
+            frames, garbage, pos = frames + 1, garbage + 1, i + 1
+            continue
+        version, stype, nch, flags, n = struct.unpack_from("<BBBBH", stream, i + 2)
+        at = i + 12 + 8 * flags
+        blocks.append(np.frombuffer(stream, DTYPES[stype], n * nch, at).reshape(n, nch).astype(float))
+        pos = i + size
+
+
+@st.composite
+def hostile_streams(draw):
+    """Good frames of one channel count with hostile bytes between them."""
+    channels = draw(st.integers(1, 3))
+    rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
+    parts = []
+    for seq in range(draw(st.integers(0, 6))):
+        kind = draw(st.sampled_from(["nested", "claims", "near", "flood", "random", "cut", "none"]))
+        if kind == "nested":  # the largest claim, thousands of bytes of it
+            junk = NESTED * draw(st.integers(1, 400))
+        elif kind == "claims":  # overlapping claims short enough to complete inside the stream
+            head = false_header(draw(st.integers(1, 3)), draw(st.integers(1, 16)), draw(st.integers(1, 400)),
+                                draw(st.integers(0, 1)))
+            junk = head * draw(st.integers(1, 600))
+        elif kind == "near":  # a whole frame, header in range, CRC wrong
+            frame = bytearray(encode_frame(rng.integers(-99, 99, size=(draw(st.integers(1, 50)), channels)), seq))
+            frame[-1 - draw(st.integers(0, 3))] ^= 1 << draw(st.integers(0, 7))
+            junk = bytes(frame) * draw(st.integers(1, 3))
+        elif kind == "flood":
+            junk = b"\xa7\x4d" * draw(st.integers(1, 3000)) + b"\xa7" * draw(st.integers(0, 1))
+        elif kind == "random":
+            junk = rng.integers(0, 256, size=draw(st.integers(1, 5000)), dtype=np.uint8).tobytes()
+        elif kind == "cut":
+            frame = encode_frame(rng.integers(-99, 99, size=(draw(st.integers(1, 50)), channels)), seq)
+            junk = frame[: draw(st.integers(1, len(frame) - 1))]
+        else:
+            junk = b""
+        stype = draw(st.sampled_from([1, 2, 3]))
+        block = rng.integers(-1000, 1000, size=(draw(st.integers(1, 300)), channels))
+        parts += [junk, encode_frame(block, seq, sample_type=stype)]
+    parts.append(draw(st.sampled_from([b"", b"\xa7", b"\xa7\x4d\x01", NESTED * 3])))
+    return channels, b"".join(parts)
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@given(case=hostile_streams(), cuts=st.lists(st.integers(1, 20000), max_size=12))
+def test_hostile_streams_decode_as_the_rules_say(case, cuts):
+    channels, stream = case
+    want, corrupt_frames, corrupt_bytes, held = reference_decode(stream, channels)
+    decoder = make_decoder("frame", channels)
+    got = feed_in_pieces(decoder, stream, cuts)
+    assert len(got) == len(want)
+    for d, w in zip(got, want):
+        assert np.array_equal(d.samples, w)
+    c = decoder.counters
+    assert (c["frames"], c["corrupt_frames"], c["corrupt_bytes"], decoder.buffered) == (
+        len(want), corrupt_frames, corrupt_bytes, held)
+
+
+def test_nested_false_headers_then_good_frames():
+    # 64.8 KB of overlapping headers, each claiming a 262 KB frame (16 float32
+    # channels of 4096 samples), then good frames: all of them come out, and
+    # every false sync is counted. Fed at once, in small pieces, and whole.
+    junk = NESTED * 8100
+    frames = [hand_frame(np.full((64, 2), k), k) for k in range(5)]
+    stream = junk + b"".join(frames)
+    for chunk, whole in ((0, False), (1000, False), (0, True)):
+        decoder = make_decoder("frame", 2)
+        if chunk:
+            out = []
+            for at in range(0, len(stream), chunk):
+                out += decoder.feed(stream[at : at + chunk])
+        else:
+            out = decoder.feed(stream, whole=whole)
+        assert [d.samples[0, 0] for d in out] == [0, 1, 2, 3, 4]
+        assert all(d.lost == 0 for d in out)
+        assert decoder.counters["corrupt_frames"] == 8100
+        assert decoder.counters["corrupt_bytes"] == len(junk)
+        assert decoder.buffered == 0
+
+
+def test_a_held_header_ending_where_the_next_chunk_starts_is_counted():
+    # The false header was read in the first call; the sync of the good frame
+    # behind it arrives half-way, its header in the second call.
+    decoder = make_decoder("frame", 1)
+    stream = NESTED + small(0, 9)
+    out = decoder.feed(stream[:12]) + decoder.feed(stream[12:])
+    assert [d.samples[0, 0] for d in out] == [9]
+    assert (decoder.counters["corrupt_frames"], decoder.counters["corrupt_bytes"]) == (1, 8)
+
+
+def test_nested_false_headers_longer_than_their_claim():
+    # The false headers outlast the 262 KB they claim, so each one's claimed
+    # frame completes and fails its CRC before the good frame arrives.
+    claim = 12 + 16 * 4096 * 4 + 4
+    junk = NESTED * (claim // 8 + 5000)
+    decoder = make_decoder("frame", 1)
+    out = []
+    stream = junk + small(0, 7) + small(1, 8)
+    for at in range(0, len(stream), 65536):
+        out += decoder.feed(stream[at : at + 65536])
+        assert decoder.buffered <= MAX_FRAME
+    assert [d.samples[0, 0] for d in out] == [7, 8]
+    assert decoder.counters["corrupt_frames"] == len(junk) // 8
+    assert decoder.counters["corrupt_bytes"] == len(junk)
+
+
+def test_overlapping_near_valid_headers_then_good_frames():
+    # Headers in range every 8 bytes whose 18-byte frames are all complete and
+    # all fail their CRC (each one's CRC field is the next header's bytes).
+    junk = false_header(1, 1, 1) * 5000
+    frames = [small(k, k) for k in range(3)]
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(junk + b"".join(frames))
+    assert [d.samples[0, 0] for d in out] == [0, 1, 2]
+    assert decoder.counters["corrupt_frames"] == 5000
+    assert decoder.counters["corrupt_bytes"] == len(junk)
+
+
+def test_random_bytes_between_good_frames():
+    rng = np.random.default_rng(8)
+    junks = [rng.integers(0, 256, size=20_000, dtype=np.uint8).tobytes() for _ in range(5)]
+    frames = [hand_frame(rng.integers(-500, 500, size=(100, 3)), k) for k in range(5)]
+    decoder = make_decoder("frame", 3)
+    out = []
+    stream = b"".join(j + f for j, f in zip(junks, frames))
+    for at in range(0, len(stream), 4096):
+        out += decoder.feed(stream[at : at + 4096])
+    assert len(out) == 5
+    for d, f in zip(out, frames):
+        assert d.samples.tobytes() == np.frombuffer(f, "<i2", 300, 12).astype(float).tobytes()
+    assert decoder.counters["corrupt_bytes"] == sum(map(len, junks))
+    assert decoder.counters["corrupt_frames"] == sum(j.count(b"\xa7\x4d") for j in junks)
+
+
+def test_whole_input_holds_nothing_back():
+    # A datagram holds whole frames: a false header claiming more than the
+    # datagram has is garbage at once, and a cut frame at the end is dropped.
+    false = b"\xa7\x4d" + struct.pack("<BBBBHI", 1, 3, 16, 0, 4096, 0)
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(false + small(0, 5) + small(1, 6)[:-3], whole=True)
+    assert [d.samples[0, 0] for d in out] == [5]
+    assert decoder.truncated and decoder.buffered == 0
+    assert decoder.counters["corrupt_frames"] == 2
+    assert decoder.counters["corrupt_bytes"] == len(false) + len(small(1)) - 3
+    out = decoder.feed(small(2, 7), whole=True)
+    assert not decoder.truncated
+    # Frame 1 never arrived whole: its samples are a gap before frame 2.
+    assert [d.samples[0, 0] for d in out] == [7] and out[0].lost == 2
 
 
 # ---------------------------------------------------------------- interface

@@ -157,3 +157,24 @@ def test_the_rate_is_known_before_the_file_is_opened(tmp_path):
     finally:
         source.close()
     assert monitor.results > 0
+
+
+def test_a_block_holding_nan_or_infinity_is_dropped_as_a_gap_and_counted(tmp_path, caplog):
+    # A float file written by scipy.io.wavfile (an outside writer) with one
+    # NaN in the 3rd block of 0.1 s and one infinity in the 6th.
+    path = tmp_path / "nan.wav"
+    data = np.random.default_rng(4).normal(size=(1000, 2)).astype(np.float32)
+    data[250, 1] = np.nan
+    data[555, 0] = -np.inf
+    wavfile.write(str(path), 1000, data)
+    with caplog.at_level("WARNING", logger="bandwatch.sources"):
+        source, blocks = replay(config(path))
+    assert [b.samples.shape[0] for b in blocks] == [100, 100, 0, 100, 100, 0, 100, 100, 100, 100]
+    assert [b.lost for b in blocks] == [0, 0, 100, 0, 0, 100, 0, 0, 0, 0]
+    kept = np.concatenate([b.samples for b in blocks])
+    assert np.array_equal(kept, np.delete(data, np.r_[200:300, 500:600], axis=0).astype(np.float64))
+    assert source.counters() == {"frames": 8, "nonfinite": 2}
+    assert (source.samples, source.lost) == (800, 200)
+    # Said once, naming the file.
+    said = [r.getMessage() for r in caplog.records if "NaN" in r.getMessage()]
+    assert len(said) == 1 and str(path) in said[0]

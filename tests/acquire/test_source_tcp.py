@@ -213,36 +213,39 @@ def test_client_keeps_waiting_on_a_silent_peer(closing):
     server.close()
 
 
-def test_a_flood_keeps_the_queue_bounded_and_every_sample_counted(closing):
+def test_a_flood_is_held_back_by_tcp_flow_control_and_nothing_is_lost(closing):
     server = listener()
     source = open_source(tcp_config("tcp-client", server.getsockname()[1]))
     source.open()
     closing(source)
     peer, _ = server.accept()
-    count, n = 3000, 256
+    count, n = 8000, 256  # about 8 MB, more than the kernel buffers take on loopback
     data = b"".join(encode_frame(frame_samples(k, n), seq=k) for k in range(count))
     sender = threading.Thread(target=peer.sendall, args=(data,), daemon=True)
     sender.start()
-    # The test reads nothing while the peer sends as fast as it can.
-    peak = 0
-    deadline = time.monotonic() + 8.0
-    while source.counters()["frames"] < count and time.monotonic() < deadline:
-        peak = max(peak, source.queued)
-        time.sleep(0.005)
-    sender.join(1.0)
-    assert source.counters()["frames"] == count
-    assert peak <= source.queue_limit
+    # The test reads nothing while the peer sends as fast as it can: the
+    # reader fills the queue, stops reading, and the sender is held back.
+    assert wait_until(lambda: source.counters()["paused"] > 0, 5.0)
+    time.sleep(0.5)
+    assert sender.is_alive()  # sendall still waits: TCP's window is closed
     assert source.queued <= source.queue_limit
-    assert source.counters()["overflows"] > 0
+    assert source.counters()["frames"] < count
+    # Now read: everything arrives, in order, with nothing lost.
     blocks = []
-    block = source.read(0.0)
-    while block is not None:
-        blocks.append(block)
-        block = source.read(0.0)
-    # Dropped samples are reported as lost, so stream time loses nothing.
-    assert sum(len(b.samples) + b.lost for b in blocks) == count * n
-    # The oldest blocks were dropped: the newest samples are the ones kept.
-    assert np.array_equal(blocks[-1].samples[-1], frame_samples(count - 1, n)[-1])
+    peak = 0
+    deadline = time.monotonic() + 30.0
+    while sum(len(b.samples) for b in blocks) < count * n and time.monotonic() < deadline:
+        peak = max(peak, source.queued)
+        block = source.read(0.1)
+        if block is not None:
+            blocks.append(block)
+    sender.join(1.0)
+    assert not sender.is_alive()
+    assert peak <= source.queue_limit
+    assert source.counters()["overflows"] == 0
+    assert [b.lost for b in blocks] == [0] * len(blocks)
+    got = np.concatenate([b.samples for b in blocks])
+    assert np.array_equal(got, np.concatenate([frame_samples(k, n) for k in range(count)]))
     peer.close()
     server.close()
 

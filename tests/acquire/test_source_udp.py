@@ -117,12 +117,96 @@ def test_a_truncated_frame_is_dropped_without_harming_the_next_datagram(udp):
     assert source.counters()["corrupt_frames"] >= 1
 
 
+def test_a_datagram_of_nested_false_headers_does_not_stall_measuring(udp):
+    # 64.8 KB of overlapping headers in range, a sync every 8 bytes, each
+    # claiming a 262 KB frame (16 float32 channels of 4096 samples), then one
+    # good frame, all in one datagram. Its samples must come out at once, not
+    # after the reader has spent seconds on the false headers.
+    source, send = udp
+    good = encode_frame(frame_samples(7), seq=0)
+    junk = b"\xa7\x4d\x01\x03\x10\x00\x00\x10" * ((64_800 - len(good)) // 8)
+    send(junk + good)
+    blocks = collect(source, N, seconds=1.0)
+    assert blocks, "no samples within 1 s of sending"
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]), frame_samples(7))
+    counters = source.counters()
+    assert counters["corrupt_frames"] == len(junk) // 8
+    assert counters["corrupt_bytes"] == len(junk)
+    assert counters["truncated"] == 0
+    # Measuring goes on: the next datagrams come through in order, no gap.
+    for seq in (1, 2):
+        send(encode_frame(frame_samples(100 * seq), seq=seq))
+    blocks = collect(source, 2 * N, seconds=1.0)
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(100), frame_samples(200)]))
+    assert [b.lost for b in blocks] == [0] * len(blocks)
+
+
 def test_a_lost_datagram_is_a_gap(udp):
     source, send = udp
     send(encode_frame(frame_samples(0), seq=10))
     send(encode_frame(frame_samples(100), seq=13))  # 11 and 12 never came
     blocks = collect(source, 2 * N)
     assert [b.lost for b in blocks] == [0, 2 * N]
+
+
+def test_a_jump_far_beyond_the_wall_clock_is_a_restart_not_a_billion_lost_samples(udp):
+    source, send = udp
+    started = time.monotonic()
+    send(encode_frame(frame_samples(0), seq=10))
+    assert collect(source, N)
+    send(encode_frame(frame_samples(100), seq=1_000_000_000))  # the sender started afresh
+    send(encode_frame(frame_samples(200), seq=1_000_000_001))
+    blocks = collect(source, 2 * N)
+    wall = time.monotonic() - started
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(100), frame_samples(200)]))
+    # A break (no spectrum spans it) of no more samples than the wall time
+    # that passed, not (1e9 - 11) frames of 16 samples.
+    assert 1 <= blocks[0].lost <= wall * RATE
+    assert sum(b.lost for b in blocks) == blocks[0].lost
+    counters = source.counters()
+    assert (counters["restarts"], counters["gaps"], counters["lost_samples"]) == (1, 0, 0)
+
+
+def test_a_backward_jump_is_a_restart_and_tracking_starts_again(udp):
+    source, send = udp
+    started = time.monotonic()
+    for seq in (500, 501):
+        send(encode_frame(frame_samples(seq), seq=seq))
+    assert len(collect(source, 2 * N)) >= 1
+    for seq in (0, 1, 3):  # rebooted: counts from 0 again; 2 is lost
+        send(encode_frame(frame_samples(seq), seq=seq))
+    blocks = collect(source, 3 * N)
+    wall = time.monotonic() - started
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([frame_samples(0), frame_samples(1), frame_samples(3)]))
+    assert 1 <= blocks[0].lost <= wall * RATE
+    assert [b.lost for b in blocks[1:]] == [0, N]  # frame 2, measured by the restarted sequence
+    counters = source.counters()
+    assert (counters["restarts"], counters["gaps"], counters["lost_samples"]) == (1, 1, N)
+
+
+def test_sequence_jumps_may_not_carry_stream_time_past_the_wall_clock(udp):
+    # At 1000 samples/s: a jump of 1.5 s of samples right after the last
+    # frame fits the 2 s allowance and counts exactly; a further jump of 3 s
+    # at once would put stream time 4.5 s ahead of the wall clock, so it is a
+    # restart, and what it lost is measured from the clock.
+    source, send = udp
+    started = time.monotonic()
+    send(encode_frame(frame_samples(0), seq=0))
+    assert collect(source, N)
+    send(encode_frame(frame_samples(1), seq=94))  # 93 frames of 16 missing: 1.488 s
+    send(encode_frame(frame_samples(2), seq=94 + 188))  # 187 more: 2.992 s
+    blocks = collect(source, 2 * N)
+    wall = time.monotonic() - started
+    assert [len(b.samples) for b in blocks] == [N, N]
+    assert blocks[0].lost == 93 * N
+    assert 1 <= blocks[1].lost <= wall * RATE
+    counters = source.counters()
+    assert (counters["gaps"], counters["lost_samples"], counters["restarts"]) == (1, 93 * N, 1)
+    # Stream time (samples and lost samples) stays within the allowance.
+    assert 3 * N + blocks[0].lost + blocks[1].lost <= (wall + 2.0) * RATE
 
 
 def test_csv_lines_end_with_their_datagram():
@@ -150,3 +234,22 @@ def test_a_port_in_use_is_a_clear_error():
             source.open()
     finally:
         taken.close()
+
+
+def test_a_flood_drops_the_oldest_blocks_and_counts_every_sample(udp):
+    # UDP cannot push back: with nothing read, the queue (2 s of samples)
+    # keeps the newest blocks and reports the dropped ones as lost.
+    source, send = udp
+    count = 400
+    for k in range(count):
+        send(encode_frame(frame_samples(k), seq=k))
+    assert wait_until(lambda: source.counters()["frames"] == count, 5.0)
+    assert source.queued <= source.queue_limit
+    assert source.counters()["overflows"] > 0 and source.counters()["paused"] == 0
+    blocks = []
+    block = source.read(0.0)
+    while block is not None:
+        blocks.append(block)
+        block = source.read(0.0)
+    assert sum(len(b.samples) + b.lost for b in blocks) == count * N
+    assert np.array_equal(blocks[-1].samples[-1], frame_samples(count - 1)[-1])

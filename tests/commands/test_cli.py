@@ -391,7 +391,7 @@ def test_levels_payload_lists_every_band_and_health_check(run_60s):
             else:
                 assert all(isinstance(v, float) for v in row["limits"].values()), row
         names = {r["name"] for r in levels["levels"]}
-        assert {"overall", "1x", "2x", "high", "stale"} <= names
+        assert {"overall", "1x", "2x", "high"} | HEALTH_CHECKS <= names
 
 
 def test_speed_is_near_the_demo_rpm(run_60s):

@@ -470,8 +470,9 @@ def test_noted_gaps_are_put_back_as_in_the_live_run(tmp_path):
     t, _ = rep.history.arrays()
     span, hop = 1024 + 2 * 256, 256
     # No result spans the gap, and stream time counts the lost samples (spec
-    # section 4): results before it end by the gap, the first after it needs
-    # a whole span of new samples.
+    # section 4): results before it end by the gap; the gap outlasts a
+    # result's span, so the average starts afresh (README, What a fault
+    # costs) and the first result after it needs a whole span of new samples.
     before = t[t < gap_at / FS]
     after = t[t > gap_at / FS]
     assert before[-1] <= (gap_at - 1) / FS
@@ -491,6 +492,68 @@ def test_noted_gaps_are_put_back_as_in_the_live_run(tmp_path):
     gaps = [e for e in replayed if e["name"] == "gap"]
     assert gaps[0]["level"] == "fault" and (gap_at + lost) / FS <= gaps[0]["stream_s"] < (gap_at + lost + hop) / FS
     assert rep.gaps == 1 and rep.lost == lost
+
+
+def test_nan_every_second_in_a_float_wav_is_a_fault_not_a_blank(tmp_path):
+    # One NaN sample per second in a float recording whose tone is 35 times
+    # the alarm limit: the blocks holding them are dropped as gaps, counted
+    # by the corrupt check, and the clean blocks still give the right value.
+    n = 20 * FS
+    t = np.arange(n) / FS
+    rms = 35 * 3.0
+    x = (rms * np.sqrt(2) * np.sin(2 * np.pi * 50 * t + 0.3) + np.random.default_rng(8).normal(0, 0.01, n))[:, None]
+    nan_at = [k * FS + int(i) for k, i in enumerate(np.random.default_rng(9).integers(0, FS, 20))]
+    dirty = x.copy()
+    dirty[nan_at, 0] = np.nan
+    rec = tmp_path / "nan.wav"
+    with RecordingWriter(str(rec), FS, ["x"], "m/s2") as writer:
+        writer.write(dirty)
+    config_path = write(tmp_path, "step.toml", STEP.format(scale="", extra=""))
+    result = bandwatch("replay", "-c", config_path, rec)
+    assert result.returncode == 0, result.stderr
+    events = events_of(result.stdout)
+    assert [(e["name"], e["level"]) for e in events if e["kind"] == "band"] == [("tone", "alarm")]
+    health = {(e["name"], e["level"]) for e in events if e["kind"] == "health"}
+    assert ("corrupt", "fault") in health and ("gap", "fault") in health
+    # The file source reads blocks of 0.1 s (205 samples here); two NaNs may share one.
+    blocks = len({i // 205 for i in nan_at})
+    assert f"{blocks} block(s) holding NaN or infinity dropped ({blocks * 205} samples)" in result.stderr
+    # Every result is measured, none blank, and each is the tone's RMS (a
+    # sine of amplitude A has RMS A / sqrt(2), common practice) to 1 %.
+    config = parse(STEP.format(scale="", extra=""), "step.toml")
+    rep = replay(config, str(rec), io.StringIO(), keep_history=True)
+    _, values = rep.history.arrays()
+    # 0.1 s lost each second leaves runs of 0.9 s, 4 frames of 0.5 s each.
+    assert rep.tally.results >= 4 * 19
+    assert np.all(np.isfinite(values)) and np.allclose(values, rms, rtol=0.01)
+    assert (rep.dropped_blocks, rep.dropped, rep.gaps, rep.lost) == (blocks, blocks * 205, 0, 0)
+    # The live path, `run` on the file source, gives the same band events.
+    live = dataclasses.replace(config, source=dataclasses.replace(config.source, path=str(rec)))
+    source = open_source(live.source)
+    source.open()
+    sink = ListSink()
+    Monitor(live, source, sink).run()
+    band = lambda events: [(e["stream_s"], e["level"], e["value"]) for e in events if e["kind"] == "band"]  # noqa: E731
+    assert band(sink.events()) == band(events)
+    assert ("corrupt", "fault") in {(e["name"], e["level"]) for e in sink.events()}
+
+
+def test_a_gap_noted_inside_a_dropped_block_still_counts(tmp_path):
+    x = step_signal(3.0, seed=2)
+    x[250, 0] = np.inf  # in the file source's second block, samples 205..409
+    rec = tmp_path / "both.wav"
+    with RecordingWriter(str(rec), FS, ["x"], "m/s2", extra={"lost": [[300, 50]]}) as writer:
+        writer.write(x)
+    config = parse(STEP.format(scale="", extra=""), "step.toml")
+    rep = replay(config, str(rec), io.StringIO(), keep_history=True)
+    assert (rep.dropped_blocks, rep.dropped, rep.gaps, rep.lost) == (1, 205, 1, 50)
+    assert rep.played == len(x) - 205
+    # Stream time counts the noted loss and the dropped block: frames start
+    # afresh after them, so the last result ends a whole number of hops
+    # after the first frame past the dropped block.
+    t, _ = rep.history.arrays()
+    after = len(x) - 410
+    assert t[-1] == pytest.approx((410 + 50 + 1024 + (after - 1024) // 256 * 256 - 1) / FS, abs=1e-9)
 
 
 def test_plain_integer_wav_takes_the_config_scale_and_full_scale(tmp_path):

@@ -25,7 +25,9 @@ NODE = "flappy"
 
 def flapping(tmp_path, port, queue_dir, seconds=12.0, realtime=True, queue_limit=10000):
     """An invented noise-only machine whose band sits at its warning limit
-    with no hysteresis and no delay: about 18 events per second of stream."""
+    with no hysteresis and no delay: about 18 events per second of stream.
+    Health faults clear without a hold, so the `queue` all-clear comes
+    within these short runs."""
     text = f"""
 [node]
 name = "{NODE}"
@@ -51,6 +53,8 @@ quantity = "acceleration"
 warning = 0.043
 hysteresis = 0.0
 delay = 0.0
+[health]
+hold = 0.0
 [mqtt]
 host = "127.0.0.1"
 port = {port}

@@ -206,6 +206,10 @@ def test_defaults_documented_in_config_py(tmp_path):
     assert (band.hysteresis, band.delay) == (0.1, 3.0)
     assert band.warning is None and band.alarm is None
     assert config.health.stale == 2.0
+    # Defaults, a choice of this project (README [health]): faults clear below
+    # 0.8 of their limit after 10 s there.
+    assert (config.health.hysteresis, config.health.hold) == (0.2, 10.0)
+    assert config.health.blind is None  # from [spectrum]: twice a result's span, at least 5 s
     assert (config.speed.rpm, config.speed.track, config.speed.search_hz) == (None, False, None)
     assert config.mqtt is None
     assert (config.summary_interval, config.prefix) == (10.0, "bandwatch")
@@ -563,6 +567,12 @@ MORE_CASES = {
                                      "corrupt = 1.5", ["1.5", "<= 1"]),
     "health-flatline-zero": Case(demo(("stale = 2.0", "stale = 2.0\nflatline = 0")), "health.flatline",
                                  "flatline = 0", ["0", "> 0"]),
+    "health-hysteresis-one": Case(demo(("stale = 2.0", "stale = 2.0\nhysteresis = 1.0")), "health.hysteresis",
+                                  "hysteresis = 1.0", ["1.0", "<= 0.99"]),
+    "health-blind-zero": Case(demo(("stale = 2.0", "stale = 2.0\nblind = 0")), "health.blind",
+                              "blind = 0", ["0", "> 0"]),
+    "health-hold-negative": Case(demo(("stale = 2.0", "stale = 2.0\nhold = -5")), "health.hold",
+                                 "hold = -5", ["-5", ">= 0"]),
     "capture-keep-zero": Case(demo() + "\n[capture]\nkeep = 0\n", "capture.keep", "keep = 0",
                               ["0", "an integer from 1"]),
     "capture-unknown-key": Case(demo() + "\n[capture]\nbefore = 3.0\n", "capture.before", "before = 3.0",

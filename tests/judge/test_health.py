@@ -17,6 +17,9 @@ FS = 1000.0
 
 
 def health(**kw):
+    # Most tests feed blocks and no results: `blind` is kept out of their way
+    # and tested on its own.
+    kw.setdefault("blind", 3600.0)
     return Health(HealthConfig(**kw), ["x", "y"], FS)
 
 
@@ -29,15 +32,16 @@ def noise(n, seed=0):
 
 
 def test_gap_fault_while_a_gap_is_inside_the_window():
-    h = health(window=2.0)
+    h = health(window=2.0, hold=1.0)
     out = []
     for k in range(60):  # 0.1 s blocks, 6 s; block 10 follows 50 lost samples
         lost = 50 if k == 10 else 0
         t = (k + 1) * 0.1 - 1 / FS
         out += [(round(t, 3), *x) for x in names(h.on_block(noise(100, k), k * 100, lost, t, None, None, None))]
-    # Raised at the block after the break, cleared once it left the 2 s window.
+    # Raised at the block after the break; cleared once it has left the 2 s
+    # window and the count has stayed at 0 for the 1 s hold.
     assert out[0] == (1.099, "gap", None, "fault")
-    assert out[1][1:] == ("gap", None, "normal") and 3.0 <= out[1][0] <= 3.3
+    assert out[1][1:] == ("gap", None, "normal") and 4.0 <= out[1][0] <= 4.3
     assert len(out) == 2
 
 
@@ -73,16 +77,17 @@ def test_float_samples_never_count_as_clipped():
 
 
 def test_flatline_after_its_seconds_and_cleared_when_it_moves():
-    h = health(flatline=1.0)
+    h = health(flatline=1.0, hold=1.0)
     out = []
-    for k in range(30):
+    for k in range(40):
         raw = noise(100, k)
         if 5 <= k < 20:
             raw[:, 1] = 3.0  # stuck
         out += [(k, *x) for x in names(h.on_block(raw, k * 100, 0, (k * 100 + 99) / FS, None, None, None))]
     # Stuck from t=0.5; 1 s later at the end of block 14 (t=1.499): value 0.999,
-    # so the fault comes with block 15.
-    assert out == [(15, "flatline", "y", "fault"), (20, "flatline", "y", "normal")]
+    # so the fault comes with block 15. Moving again from block 20 (value
+    # about 0 from t=2.099), it clears after the 1 s hold, with block 30.
+    assert out == [(15, "flatline", "y", "fault"), (30, "flatline", "y", "normal")]
 
 
 def test_rate_disagreeing_with_timestamps():
@@ -125,10 +130,13 @@ def test_alias_guard_fires_when_energy_sits_near_nyquist():
 
 
 def test_stale_after_its_seconds():
-    h = health(stale=2.0)
+    h = health(stale=2.0, hold=1.0)
     assert names(h.on_quiet(1.9, 0.0)) == []
     assert names(h.on_quiet(2.0, 0.0)) == [("stale", None, "fault")]
-    assert names(h.on_block(noise(10), 0, 0, 0.01, None, None, None)) == [("stale", None, "normal")]
+    # Samples again: the fault clears after 1 s (the hold) of stream time.
+    assert names(h.on_block(noise(10), 0, 0, 0.01, None, None, None)) == []
+    assert names(h.on_block(noise(10), 10, 0, 0.5, None, None, None)) == []
+    assert names(h.on_block(noise(10), 20, 0, 1.01, None, None, None)) == [("stale", None, "normal")]
 
 
 def test_rows_cover_every_check():
@@ -136,15 +144,34 @@ def test_rows_cover_every_check():
     assert {(r["name"], r["channel"]) for r in rows} == {
         ("stale", None), ("gap", None), ("corrupt", None), ("rate", None),
         ("clipping", "x"), ("clipping", "y"), ("flatline", "x"), ("flatline", "y"),
-        ("nyquist", "x"), ("nyquist", "y"), ("queue", None), ("config", None),
+        ("nyquist", "x"), ("nyquist", "y"), ("blind", None), ("queue", None), ("config", None),
     }
 
 
+def test_blind_when_samples_arrive_but_no_result_comes():
+    # Its default limit: twice the samples a result needs from a standing
+    # start (here 1.5 s), but at least 5 s (a choice of this project).
+    assert Health(HealthConfig(), ["x"], FS, span=1500).blind.rule.limits == [("fault", 5.0)]
+    assert Health(HealthConfig(), ["x"], FS, span=4000).blind.rule.limits == [("fault", 8.0)]
+    h = health(blind=2.0, hold=1.0)
+    spec = SpectralStage(FS, 256, "hann", 1, 2).push(noise(256).T)
+    out = []
+    for k in range(60):  # 0.1 s blocks; results up to 1 s, none from 1 s to 4 s, then again
+        t = (k + 1) * 0.1 - 1 / FS
+        out += [(round(t, 3), *x) for x in names(h.on_block(noise(100, k), k * 100, 0, t, None, None, None))]
+        if k < 10 or k >= 40:
+            out += [(round(t, 3), *x) for x in names(h.on_spectrum(spec, t))]
+    # Raised once 2 s of samples came without a result (at 2.999 s), cleared
+    # 1 s (the hold) after results are back at 4.099 s.
+    assert out == [(2.999, "blind", None, "fault"), (5.099, "blind", None, "normal")]
+
+
 def test_queue_fault_from_first_drop_until_the_queue_empties():
-    h = health()
+    h = health(hold=1.0)
     steps = [(0, 0), (0, 500), (3, 1000), (7, 1000), (7, 20), (7, 0), (7, 0), (9, 1000)]
     out = [(i, *x) for i, (d, q) in enumerate(steps) for x in names(h.on_delivery(d, q, float(i)))]
-    assert out == [(2, "queue", None, "fault"), (5, "queue", None, "normal"), (7, "queue", None, "fault")]
+    # Emptied at step 5, cleared 1 s (the hold) later.
+    assert out == [(2, "queue", None, "fault"), (6, "queue", None, "normal"), (7, "queue", None, "fault")]
 
 
 def test_clipped_int16_recording_raises_clipping_through_the_pipeline(tmp_path):

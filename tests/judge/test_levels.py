@@ -95,3 +95,13 @@ def test_delay_counts_stream_time_not_calls():
     m = band(delay=3.0)
     changes = drive(m, [11] * 20, step=0.4)
     assert changes[0][0] == 3.2
+
+
+def test_a_hold_apart_from_the_delay_clears_only_after_it():
+    # Health checks: raised at once (delay 0), lowered after the value has
+    # stayed below limit * (1 - hysteresis) = 8 for the 3 s hold.
+    machine = LevelMachine([("fault", 10.0)], 0.2, 0.0, hold=3.0)
+    assert machine.hold_s == 3.0
+    values = [11, 7, 7, 9, 7, 7, 7, 7, 11]
+    assert drive(machine, values) == [(0.0, "normal", "fault"), (7.0, "fault", "normal"),
+                                      (8.0, "normal", "fault")]

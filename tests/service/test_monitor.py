@@ -153,21 +153,72 @@ def test_results_every_hop_with_stream_time_from_samples():
     assert monitor.latest.stream_s == pytest.approx((n - 1) / FS)
 
 
-def test_no_result_spans_a_gap():
+def frame_psds(x, size, starts):
+    """One-sided PSD of each frame of `size` samples starting at `starts`,
+    as scipy.signal.welch gives it for a single segment (detrend="constant")."""
+    return [scipy.signal.welch(x[s : s + size].T, FS, window="hann", nperseg=size, noverlap=0,
+                               detrend="constant")[1] for s in starts]
+
+
+def test_a_gap_costs_one_frame_not_the_average():
     config = make()
     spec = config.spectrum
     n = 3 * spec.span
     gap_at = spec.span + 5
-    monitor, _ = run(config, tones(n, [[(50.0, 1.0)], [(50.0, 1.0)]]), gaps={gap_at: 1000})
-    # Before the gap: results from span to gap_at; after it the ring starts
-    # afresh and needs a whole span again.
+    x = tones(n, [[(50.0, 1.0)], [(50.0, 1.0)]])
+    monitor, _ = run(config, x, gaps={gap_at: 1000})
+    # Before the gap: results from span to gap_at. After it, no frame spans
+    # the gap, so the first result comes once `size` samples past it make a
+    # frame, and then every hop: the averages already made are kept.
+    before = 1 + (gap_at - spec.span) // spec.hop
+    after = 1 + (n - gap_at - spec.size) // spec.hop
+    assert monitor.results == before + after
+    # Lost samples still count in stream time.
+    last_end = gap_at + spec.size + (after - 1) * spec.hop
+    assert monitor.latest.stream_s == pytest.approx((last_end + 1000 - 1) / FS)
+    # Reference: the mean of scipy.signal.welch's single-frame PSDs of the
+    # last `averages` frames that do not span the gap (Welch's average of
+    # modified periodograms, which need not be contiguous).
+    pre = [gap_at - spec.size - k * spec.hop for k in range(spec.averages)]
+    post = [gap_at + k * spec.hop for k in range(after)]
+    frames = sorted(s for s in pre if s >= 0) + post
+    ref = np.mean(frame_psds(x, spec.size, frames[-spec.averages:]), axis=0)
+    np.testing.assert_allclose(monitor.latest.spectrum.psd, ref, rtol=1e-9, atol=0)
+
+
+def test_first_result_after_a_gap_mixes_frames_from_both_sides():
+    config = make()
+    spec = config.spectrum
+    gap_at = spec.span + 2 * spec.hop  # the ring holds whole frames up to here
+    n = gap_at + spec.size
+    x = tones(n, [[(50.0, 1.0), (120.0, 0.3)], [(75.0, 0.5)]])
+    monitor, _ = run(config, x, gaps={gap_at: 300})
+    # One result after the gap, from the one new frame and the last
+    # `averages - 1` frames before it (scipy.signal.welch per frame).
+    assert monitor.results == 1 + (gap_at - spec.span) // spec.hop + 1
+    starts = [gap_at - spec.size - k * spec.hop for k in range(spec.averages - 1)] + [gap_at]
+    ref = np.mean(frame_psds(x, spec.size, starts), axis=0)
+    np.testing.assert_allclose(monitor.latest.spectrum.psd, ref, rtol=1e-9, atol=0)
+    # The summary of that result takes its time statistics from the samples
+    # since the gap, the one frame; numpy's RMS of the mean-removed frame is
+    # the reference (payload numbers have 6 significant digits).
+    frame = x[gap_at:, 0]
+    rms = np.sqrt(np.mean((frame - frame.mean()) ** 2))
+    summary = monitor._summary_payload(monitor.latest)
+    assert summary["channels"]["x"]["rms"] == pytest.approx(rms, rel=1e-5)
+
+
+def test_an_outage_longer_than_a_span_restarts_the_average():
+    config = make()
+    spec = config.spectrum
+    n = 3 * spec.span
+    gap_at = spec.span + 5
+    monitor, _ = run(config, tones(n, [[(50.0, 1.0)], [(50.0, 1.0)]]), gaps={gap_at: spec.span})
+    # A choice of this project: spectra from before an outage longer than one
+    # result's span are dropped, so a whole span is needed again.
     before = 1 + (gap_at - spec.span) // spec.hop
     after = 1 + (n - gap_at - spec.span) // spec.hop
     assert monitor.results == before + after
-    # Lost samples still count in stream time: the last result ends a whole
-    # number of hops after the first full span past the gap.
-    last_end = gap_at + spec.span + (after - 1) * spec.hop
-    assert monitor.latest.stream_s == pytest.approx((last_end + 1000 - 1) / FS)
 
 
 STEP_BAND = """
@@ -295,7 +346,8 @@ class FakeClock:
 
 
 def test_stale_fault_raised_and_cleared():
-    config = make(extra="[health]\nstale = 2.0\n")
+    # No hold: the fault clears with the first block after the silence.
+    config = make(extra="[health]\nstale = 2.0\nhold = 0.0\n")
     clock = FakeClock()
     source = QuietSource(config.source, clock, tones(4096, [[(50.0, 1.0)], [(50.0, 1.0)]]))
     sink = ListSink()

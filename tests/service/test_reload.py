@@ -136,7 +136,9 @@ def test_partial_reload_applies_what_it_can_and_names_the_rest(caplog):
 
 def test_sighup_reloads_a_running_service(tmp_path):
     with open(os.path.join(ROOT, "config", "demo.toml"), encoding="utf-8") as fh:
-        text = fh.read()
+        # A short hold, so the config fault clears within the test's seconds.
+        text = fh.read().replace("[health]\n", "[health]\nhold = 1.0\n")
+    assert "hold = 1.0" in text
     path = tmp_path / "bandwatch.toml"
     quiet = re.sub(r"warning = [0-9.]+", "warning = 900.0", text)
     quiet = re.sub(r"alarm = [0-9.]+", "alarm = 999.0", quiet)

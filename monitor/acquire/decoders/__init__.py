@@ -4,6 +4,8 @@
 ("frame" or "csv"). A decoder is fed whatever bytes arrived and returns the
 sample blocks it could complete; it keeps a bounded tail of partial input
 between calls, resynchronises on garbage and counts what it had to throw away.
+Input that ends every frame or line it holds (a UDP datagram) is fed with
+`whole=True`: nothing of it is kept for the next call.
 
 The binary frame format lives in `frame.py`, the text format in `text.py`.
 """
@@ -23,6 +25,7 @@ class Decoder:
       corrupt_bytes    bytes skipped while resynchronising
       gaps             sequence jumps
       lost_samples     samples per channel lost in those jumps
+      restarts         sequence jumps back or beyond `max_gap`: the sender started afresh
       mismatched       frames whose channel count differs from the config
       nonfinite        frames or lines rejected for NaN or infinite samples
     """
@@ -30,12 +33,21 @@ class Decoder:
     def __init__(self, channels: int) -> None:
         self.channels = channels
         self.counters: Dict[str, int] = dict.fromkeys(
-            ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "mismatched", "nonfinite"), 0
+            ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "restarts", "mismatched",
+             "nonfinite"), 0
         )
+        # The most samples per channel a forward sequence jump may stand for
+        # before it counts as a restart (None: no bound). A live source sets
+        # it from the time that has passed.
+        self.max_gap: Optional[int] = None
+        # Whether the last `whole` feed ended inside a frame (its partial
+        # frame was dropped).
+        self.truncated = False
 
-    def feed(self, data: bytes) -> List[Block]:
-        """The blocks `data` completes: one per frame (or run of CSV lines),
-        raw values before scale, `lost` set after a sequence gap."""
+    def feed(self, data: bytes, whole: bool = False) -> List[Block]:
+        """Blocks completed by `data`. With `whole`, `data` ends every frame
+        or line in it: a partial one at its end is dropped (frames) or ended
+        there (lines), never joined with the next call's bytes."""
         raise NotImplementedError
 
     def reset(self) -> None:

@@ -18,14 +18,27 @@ CRC matches. Otherwise the decoder steps one byte past the sync and scans for
 the next one, so a false sync (in garbage or inside a damaged frame) never
 swallows the good frame behind it. A header that is in range but whose frame
 has not fully arrived is held, unless a complete frame with a good CRC already
-starts inside the bytes it claims: then the held header was false (or its
-frame truncated) and is dropped at once, instead of stalling the stream until
-the bytes it claimed have arrived.
+starts after it, inside the bytes it claims: a real frame does not hold
+another whole frame with a matching CRC in its samples (short of a false
+header there and a 1 in 2**32 accident), so the held header was false or its
+frame cut short. It is dropped at once instead of stalling the stream until
+the bytes it claimed have arrived. Fed with `whole=True` (a UDP datagram, which
+holds whole frames) nothing is held: what is left at the end is dropped.
+
+Cost on hostile input: bytes are scanned for syncs once, each header is read
+once, and each candidate's CRC is checked once, when its last byte arrives;
+the CRCs of overlapping candidates share one pass over their bytes
+(spancrc.py). Many syncs at once are handled with numpy, a few with plain
+code. So time stays in proportion to the bytes fed, however the false
+headers nest (bench/acquisition.py measures it).
 
 Sequence numbers: the first frame after creation or `reset()` sets the
 expectation. A forward jump of k frames is a gap of k * n samples (n of the
-arriving frame). A backward jump (the sender restarted or repeated a frame) is
-also a gap; its size is unknown and reported as one frame's worth. A frame
+arriving frame), unless k * n exceeds `max_gap`. Such a jump, or a backward
+one (the sender restarted, or repeated a frame), is a restart: tracking
+starts again from that frame, `restarts` counts it, and its Block carries
+`restart` (and `lost` of at least 1), since the sequence says nothing about
+how much is missing; the stream source measures that from the clock. A frame
 with a good CRC that is dropped anyway (wrong channel count, NaN or infinite
 float samples) still advances the sequence, and its samples are added to the
 `lost` of the next delivered frame, so no spectrum spans the hole.
@@ -39,6 +52,7 @@ import numpy as np
 
 from ..block import Block, full_scale
 from . import Decoder
+from .spancrc import span_crcs
 
 SYNC = b"\xa7\x4d"
 VERSION = 1
@@ -58,8 +72,23 @@ _TYPES: Dict[int, np.dtype] = {INT16: np.dtype("<i2"), INT32: np.dtype("<i4"), F
 _SEQ_MOD = 1 << 32
 _HALF = 1 << 31
 
-# Results of checking a candidate frame.
-_BAD, _GOOD, _INCOMPLETE = 0, 1, 2
+# Header bytes 2-3 (version, type) -> bytes per sample, 0 when out of range;
+# bytes 4-5 (channels, flags) -> channels, 0 when out of range. For reading
+# many headers at once.
+_WIDTH_BY_VERSION_TYPE = np.zeros(1 << 16, dtype=np.uint8)
+for _type, _dtype in _TYPES.items():
+    _WIDTH_BY_VERSION_TYPE[VERSION | _type << 8] = _dtype.itemsize
+_CHANNELS_BY_FIELD = np.zeros(1 << 16, dtype=np.uint8)
+for _flags in (0, FLAG_TIMESTAMP):
+    _CHANNELS_BY_FIELD[np.arange(1, MAX_CHANNELS + 1) | _flags << 8] = np.arange(1, MAX_CHANNELS + 1)
+# Syncs are read one by one while they are sparse (as in frames with garbage
+# here and there); once _SMALL of them come closer than _SPARSE bytes apart on
+# average, the rest of the chunk is read with numpy.
+_SMALL = 16
+_SPARSE = 256
+_LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
+_EMPTY = np.zeros(0, dtype=np.int64)
+_NOWHERE = 1 << 62  # an end no buffer reaches
 
 
 def _frame_size(version: int, stype: int, nch: int, flags: int, n: int) -> int:
@@ -72,6 +101,40 @@ def _frame_size(version: int, stype: int, nch: int, flags: int, n: int) -> int:
     return HEADER_SIZE + extra + n * nch * _TYPES[stype].itemsize + CRC_SIZE
 
 
+def _crc_matches(buf: bytearray, view: memoryview, start: int, stop: int) -> bool:
+    """Whether the frame in buf[start:stop] carries the CRC of its bytes."""
+    crc_at = stop - CRC_SIZE
+    return zlib.crc32(view[start + 2 : crc_at]) == _U32.unpack_from(buf, crc_at)[0]
+
+
+def _count_syncs(buf: bytearray, start: int, stop: int) -> int:
+    """How many syncs lie wholly in buf[start:stop]."""
+    if stop - start < _LONG:
+        return buf.count(SYNC, start, stop)
+    region = np.frombuffer(buf, np.uint8, stop - start, start)
+    return int(np.count_nonzero((region[:-1] == SYNC[0]) & (region[1:] == SYNC[1])))
+
+
+def _headers(buf: bytearray, start: int, stop: int) -> Tuple[np.ndarray, np.ndarray]:
+    """Offsets and frame ends of the syncs starting in [start, stop) whose
+    header is in range, all read at once (each header has fully arrived)."""
+    length = stop - start
+    region = np.frombuffer(buf, np.uint8, length + 2, start)
+    first = np.flatnonzero(region[:length] == SYNC[0])
+    first = first[(region[first + 1] == SYNC[1]) & (region[first + 2] == VERSION)]  # cheap first cut
+    del region
+    # The first 8 header bytes at each of those (an overlapping view of
+    # the buffer as 8-byte integers, one per offset), split into four 16-bit
+    # fields: sync, version and type, channels and flags, n.
+    head = np.ndarray((length,), dtype="<u8", buffer=buf, offset=start, strides=(1,))[first]
+    _sync, version_type, channels_flags, n = head.view("<u2").reshape(-1, 4).T
+    per_instant = _WIDTH_BY_VERSION_TYPE[version_type] * _CHANNELS_BY_FIELD[channels_flags].astype(np.int32)
+    ok = (per_instant > 0) & (n - np.uint16(1) < MAX_SAMPLES)  # n - 1 wraps for n = 0
+    at = first[ok] + start
+    size = HEADER_SIZE + CRC_SIZE + TIMESTAMP_SIZE * (channels_flags[ok] >> 8) + n[ok].astype(np.int32) * per_instant[ok]
+    return at, at + size
+
+
 class FrameDecoder(Decoder):
     """Decodes a stream of version 1 frames into blocks, one per good frame."""
 
@@ -80,7 +143,8 @@ class FrameDecoder(Decoder):
         self._buf = bytearray()
         self._expected: Optional[int] = None
         self._pending_lost = 0
-        self._reset_lookahead()
+        self._pending_restart = False
+        self._forget()
 
     @property
     def buffered(self) -> int:
@@ -90,101 +154,142 @@ class FrameDecoder(Decoder):
         self._buf = bytearray()
         self._expected = None
         self._pending_lost = 0
-        self._reset_lookahead()
+        self._pending_restart = False
+        self._forget()
 
-    def _reset_lookahead(self) -> None:
-        # Memo of the look-ahead behind one held (incomplete) candidate, so
-        # repeated small feeds never rescan the bytes already looked at.
-        self._ahead_at = -1
-        self._ahead_from = 0
-        self._ahead_pending: List[int] = []
-        self._held = 0  # size of the incomplete frame held at the start of the buffer
+    def _forget(self) -> None:
+        # What is known about the buffer, so no byte is looked at twice:
+        # every sync that starts before `_seen` has had its header read, and
+        # the candidates with a header in range whose frame has not fully
+        # arrived are listed by offset (ascending) and end.
+        self._seen = 0
+        self._open_at = _EMPTY
+        self._open_end = _EMPTY
+        self._next_end = _NOWHERE  # the first end of an open candidate
 
-    def feed(self, data: bytes) -> List[Block]:
+    def feed(self, data: bytes, whole: bool = False) -> List[Block]:
         buf = self._buf
         buf += data
         end = len(buf)
-        if end < self._held and not self._ahead_pending and buf.find(SYNC, self._ahead_from) < 0:
-            # Still filling the held frame and no new sync arrived: nothing to do.
-            self._ahead_from = end - 1
+        self.truncated = False
+        scan_to = end - HEADER_SIZE + 1  # a sync before this has its whole header
+        open_at, open_end = self._open_at, self._open_end
+        if (not whole and end < self._next_end and len(open_at) and open_at[0] == 0
+                and buf.find(SYNC, self._seen, scan_to + 1) < 0):
+            # Still filling the frame held at the start, no new header: nothing to do.
+            self._seen = max(self._seen, scan_to)
             return []
         out: List[Block] = []
-        counters = self.counters
-        pos = 0
-        held = 0
+        pos = 0  # everything before has been taken or skipped
         with memoryview(buf) as view:
-            while True:
-                i = buf.find(SYNC, pos)
-                if i < 0:
-                    # Keep a lone first sync byte: its partner may come next.
-                    keep = end - 1 if end > pos and buf[end - 1] == SYNC[0] else end
-                    counters["corrupt_bytes"] += keep - pos
-                    pos = keep
-                    break
-                counters["corrupt_bytes"] += i - pos
-                pos = i
-                state, size = self._check(buf, view, i, end)
-                if state == _INCOMPLETE:
-                    if size and self._complete_frame_after(buf, view, i, end):
-                        state = _BAD
-                    else:
-                        held = size
-                        break
-                if state == _BAD:
-                    counters["corrupt_frames"] += 1
-                    counters["corrupt_bytes"] += 1
-                    pos = i + 1
-                    continue
-                self._accept(buf, i, out)
-                pos = i + size
-        if pos:
-            del buf[:pos]
-        if self._ahead_at == pos:
-            self._ahead_at = 0
-            self._ahead_from -= pos
-            self._ahead_pending = [j - pos for j in self._ahead_pending]
-            self._held = held
-        else:
-            self._reset_lookahead()
+            # A held candidate gets its one CRC check when its last byte is here.
+            if end >= self._next_end:
+                done = open_end <= end
+                pos = self._take(buf, self._verify(buf, view, open_at[done], open_end[done]), pos, out)
+                open_at, open_end = open_at[~done], open_end[~done]
+            start = max(self._seen, pos)
+            if scan_to > start:
+                new_at, new_end, pos = self._scan(buf, view, start, scan_to, pos, out)
+                if len(new_at):
+                    open_at = np.concatenate((open_at, new_at))  # offsets stay ascending
+                    open_end = np.concatenate((open_end, new_end))
+            self._seen = max(self._seen, scan_to)
+        # Hold from the first candidate still arriving: a header in range,
+        # a header not yet whole, or a lone first sync byte at the very end.
+        k = int(np.searchsorted(open_at, pos)) if len(open_at) else 0
+        hold = int(open_at[k]) if k < len(open_at) else end
+        partial = buf.find(SYNC, max(pos, self._seen), hold)
+        if partial >= 0:
+            hold = partial
+        elif hold == end > pos and buf[end - 1] == SYNC[0]:
+            hold = end - 1
+        if whole:
+            self.truncated = hold < end
+            hold = end
+        self._skip(buf, pos, hold)
+        if hold:
+            del buf[:hold]
+            self._seen = max(self._seen - hold, 0)
+            if len(open_at):
+                k = int(np.searchsorted(open_at, hold))
+                open_at, open_end = open_at[k:] - hold, open_end[k:] - hold
+        self._open_at, self._open_end = open_at, open_end
+        self._next_end = int(open_end.min()) if len(open_end) else _NOWHERE
         return out
 
-    def _check(self, buf: bytearray, view: memoryview, i: int, end: int) -> Tuple[int, int]:
-        """(state, frame size) of the candidate at `i`; size 0 when the header
-        itself has not fully arrived."""
-        if end - i < HEADER_SIZE:
-            return _INCOMPLETE, 0
-        size = _frame_size(*_HEAD.unpack_from(buf, i + 2)[:5])
-        if not size:
-            return _BAD, 0
-        if end - i < size:
-            return _INCOMPLETE, size
-        crc_at = i + size - CRC_SIZE
-        if zlib.crc32(view[i + 2 : crc_at]) != _U32.unpack_from(buf, crc_at)[0]:
-            return _BAD, size
-        return _GOOD, size
+    def _scan(self, buf: bytearray, view: memoryview, start: int, stop: int, pos: int,
+              out: List[Block]) -> Tuple[np.ndarray, np.ndarray, int]:
+        """Read the headers of the syncs starting in [start, stop) and take
+        each complete frame with a good CRC (skipping its body). Returns the
+        offsets and ends of the candidates in range but not yet complete, and
+        where taking and skipping got to."""
+        end = len(buf)
+        found_at: List[int] = []
+        found_end: List[int] = []
+        i = buf.find(SYNC, start, stop + 1)
+        window, count = i, 0
+        passed = 0  # syncs looked at since max(pos, start), none of them taken
+        while i >= 0:
+            count += 1
+            if count > _SMALL:
+                if i - window < _SMALL * _SPARSE:
+                    break  # dense syncs: the rest is read with numpy below
+                window, count = i, 1
+            size = _frame_size(*_HEAD.unpack_from(buf, i + 2)[:5])
+            if size and i + size > end:
+                found_at.append(i)
+                found_end.append(i + size)
+            elif size and _crc_matches(buf, view, i, i + size):
+                if i > pos:
+                    # Syncs before `start` were read in an earlier call (one may end at `start`).
+                    self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
+                self._accept(buf, i, out)
+                pos = i + size
+                passed = 0
+                i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
+                continue
+            passed += 1
+            i = buf.find(SYNC, i + 2, stop + 1)
+        at = np.array(found_at, dtype=np.int64)
+        ends = np.array(found_end, dtype=np.int64)
+        if i >= 0:
+            more_at, more_end = _headers(buf, i, stop)
+            now = more_end <= end
+            pos = self._take(buf, self._verify(buf, view, more_at[now], more_end[now]), pos, out)
+            at = np.concatenate((at, more_at[~now]))
+            ends = np.concatenate((ends, more_end[~now]))
+        return at, ends, pos
 
-    def _complete_frame_after(self, buf: bytearray, view: memoryview, i: int, end: int) -> bool:
-        """Whether a complete frame with a good CRC starts after the held candidate at `i`."""
-        if self._ahead_at != i:
-            self._ahead_at, self._ahead_from, self._ahead_pending = i, i + 1, []
-        waiting = []
-        for j in self._ahead_pending:
-            state = self._check(buf, view, j, end)[0]
-            if state == _GOOD:
-                return True
-            if state == _INCOMPLETE:
-                waiting.append(j)
-        j = buf.find(SYNC, self._ahead_from)
-        while j >= 0:
-            state = self._check(buf, view, j, end)[0]
-            if state == _GOOD:
-                return True
-            if state == _INCOMPLETE:
-                waiting.append(j)
-            j = buf.find(SYNC, j + 1)
-        self._ahead_from = max(end - 1, i + 1)  # a sync may straddle the end
-        self._ahead_pending = waiting
-        return False
+    def _take(self, buf: bytearray, good: List[Tuple[int, int]], pos: int, out: List[Block]) -> int:
+        """Take these good frames (offset, end; ascending) that start at or
+        after `pos`, and skip what lies before each: syncs with a header out
+        of range or a bad CRC, and held headers whose claimed bytes hold the
+        good frame. Returns where the last frame taken ends."""
+        for at, stop in good:
+            if at < pos:
+                continue  # starts inside the frame just taken
+            if at > pos:
+                self._skip(buf, pos, at)
+            self._accept(buf, at, out)
+            pos = stop
+        return pos
+
+    def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
+        """Count buf[start:stop] as garbage: its bytes, and each sync in it as
+        a rejected frame (`syncs` of them, when already known)."""
+        if stop > start:
+            self.counters["corrupt_bytes"] += stop - start
+            self.counters["corrupt_frames"] += _count_syncs(buf, start, stop) if syncs is None else syncs
+
+    @staticmethod
+    def _verify(buf: bytearray, view: memoryview, at: np.ndarray, stop: np.ndarray) -> List[Tuple[int, int]]:
+        """Offsets and ends of the complete candidates (ascending) whose CRC matches."""
+        if len(at) < _SMALL:
+            return [(i, e) for i, e in zip(at.tolist(), stop.tolist()) if _crc_matches(buf, view, i, e)]
+        crc_at = stop - CRC_SIZE
+        stored = np.ndarray((len(buf) - 3,), dtype="<u4", buffer=buf, strides=(1,))[crc_at]
+        good = span_crcs(view, at + 2, crc_at) == stored
+        return list(zip(at[good].tolist(), stop[good].tolist()))
 
     def _accept(self, buf: bytearray, i: int, out: List[Block]) -> None:
         """Take the good frame at `i`: sequence bookkeeping, then deliver or drop."""
@@ -194,9 +299,16 @@ class FrameDecoder(Decoder):
         expected = self._expected
         if expected is not None and seq != expected:
             missing = (seq - expected) % _SEQ_MOD
-            lost = n if missing >= _HALF else missing * n
-            counters["gaps"] += 1
-            counters["lost_samples"] += lost
+            if missing >= _HALF or (self.max_gap is not None and missing * n > self.max_gap):
+                # Backwards, or further ahead than could have been lost: the
+                # sender started afresh and the sequence says nothing about
+                # what is missing. Tracking starts again from this frame.
+                counters["restarts"] += 1
+                self._pending_restart = True
+            else:
+                lost = missing * n
+                counters["gaps"] += 1
+                counters["lost_samples"] += lost
         self._expected = (seq + 1) % _SEQ_MOD
         if nch != self.channels:
             counters["mismatched"] += 1
@@ -213,9 +325,12 @@ class FrameDecoder(Decoder):
             self._pending_lost += lost + n
             return
         counters["frames"] += 1
-        out.append(Block(samples=samples, lost=lost + self._pending_lost, full_scale=_FULL_SCALE.get(stype),
-                         timestamp_us=timestamp))
+        lost += self._pending_lost
+        restart = self._pending_restart
+        out.append(Block(samples=samples, lost=max(lost, 1) if restart else lost, full_scale=_FULL_SCALE.get(stype),
+                         timestamp_us=timestamp, restart=restart))
         self._pending_lost = 0
+        self._pending_restart = False
 
 
 # Largest positive value of each integer sample type: samples there are clipped.

@@ -61,8 +61,10 @@ class CsvDecoder(Decoder):
         self._tail = b""
         self._skipping = False
 
-    def feed(self, data: bytes) -> List[Block]:
+    def feed(self, data: bytes, whole: bool = False) -> List[Block]:
         data = bytes(data)
+        if whole and not data.endswith(b"\n"):
+            data += b"\n"  # the end of the datagram ends its last line
         if self._skipping:
             i = data.find(b"\n")
             if i < 0:

@@ -5,11 +5,16 @@ Like a transport per file behind one base class: the base owns the public
 implements `_open`, `_read` and `_close`.
 """
 
+import logging
 import time
 from typing import Dict, Optional
 
+import numpy as np
+
 from ...config import SourceConfig
 from ..block import Block
+
+log = logging.getLogger("bandwatch.sources")
 
 
 class Source:
@@ -25,6 +30,7 @@ class Source:
         self.blocks = 0
         self.samples = 0
         self.lost = 0
+        self.rejected = 0  # blocks dropped for NaN or infinite samples
         self._pace_start: Optional[float] = None
         self._pace_samples = 0
 
@@ -39,8 +45,10 @@ class Source:
 
     def counters(self) -> Dict[str, int]:
         """Cumulative counters of the link and its decoder (frames, gaps,
-        connects, ...); a source without a link or decoder has none."""
-        return {}
+        connects, ...). A source without a decoder counts its blocks: handed
+        out whole (`frames`) and dropped for NaN or infinite samples
+        (`nonfinite`), so its corrupt share counts in blocks."""
+        return {"frames": self.blocks - self.rejected, "nonfinite": self.rejected}
 
     def describe(self) -> str:
         """Kind and address, for log lines, errors and the view."""
@@ -57,6 +65,8 @@ class Source:
         block = self._read(timeout)
         if block is None:
             return None
+        if not np.isfinite(block.samples).all():
+            block = self._reject(block)
         n = block.samples.shape[0]
         self.blocks += 1
         self.samples += n
@@ -64,6 +74,17 @@ class Source:
         if self.config.realtime:
             self._pace(n)
         return block
+
+    def _reject(self, block: Block) -> Block:
+        """A block holding NaN or infinity, as a corrupt frame is: dropped
+        whole, its samples a gap (so no spectrum is blanked by them), the
+        block counted in `nonfinite`."""
+        n = block.samples.shape[0]
+        if not self.rejected:
+            log.warning("%s: NaN or infinite samples; each block holding one is dropped (%d samples here), "
+                        "counted as corrupt, and its samples as lost", self.describe(), n)
+        self.rejected += 1
+        return block._replace(samples=block.samples[:0], lost=block.lost + n, timestamp_us=None)
 
     def _pace(self, n: int) -> None:
         """Hold a block back until its last sample would have been measured."""

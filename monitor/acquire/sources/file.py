@@ -5,6 +5,11 @@ out raw as stored: integers for PCM files (the config's `scale` turns them
 into the unit), floats for float files (bandwatch recordings already hold the
 unit, so `scale` is normally 1). `realtime = true` pacing is done by the base
 class; otherwise the file plays as fast as it can be read.
+
+A float file may hold NaN or infinity (a logger that wrote one for a missed
+reading): the base class drops each block of about 0.1 s that holds one, as
+a stream source drops a corrupt frame, so the `corrupt` check counts in
+these blocks.
 """
 
 import logging

@@ -64,12 +64,13 @@ class BytesSource(StreamSource):
     thread feeds them to the decoder, and the blocks wait in the bounded
     queue for `read`.
 
-    Unlike a sensor it waits for room in the queue instead of overflowing
+    Like a TCP link it waits for room in the queue instead of overflowing
     it, so every sample arrives: it measures the path, not a link. It ends
     once every chunk is decoded and every block read.
     """
 
     kind = "bytes"
+    pushes_back = True
 
     def __init__(self, config: SourceConfig, chunks: Sequence[bytes]) -> None:
         super().__init__(config)
@@ -78,10 +79,8 @@ class BytesSource(StreamSource):
 
     def _loop(self) -> None:
         for chunk in self._chunks:
-            while self.queued > self.queue_limit // 2:
-                self._tick()
-                if self._stop.wait(0.001):
-                    return
+            if self._stop.is_set():
+                return
             self._tick()
             self._consume(chunk)
         self._done.set()

@@ -8,10 +8,14 @@ udp) shares this machinery:
   a bounded queue. `read(timeout)` only ever waits on that queue.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
-  wide streams). When it is full the oldest block is dropped, its samples are
-  added to the `lost` of the block that follows it, and `overflows` counts
-  it: a peer that floods the link, or a measuring thread that falls behind,
-  costs samples but never memory, and stream time still counts every sample.
+  wide streams). When it is full, a link that can push back (TCP) stops
+  reading until there is room: the kernel's buffers fill and TCP flow control
+  slows the sender, so a burst is read late but whole (`paused` counts the
+  stops). A link that cannot push back (serial, UDP) drops the oldest block
+  instead: its samples are added to the `lost` of the block that follows it,
+  and `overflows` counts it. Either way a peer that floods the link, or a
+  measuring thread that falls behind, never costs memory, and stream time
+  still counts every sample.
 
 * Link kinds reconnect after a failure with exponential backoff (0.1 s,
   doubling, at most 3 s) and log once per outage, not once per attempt.
@@ -27,9 +31,20 @@ samples keeps stream time in step with real time across it. The arrival clock
 is used rather than frame timestamps because a sensor that rebooted may have
 restarted its clock.
 
+Sequence jumps. A jump forward in the frame sequence counts as its samples
+lost only while stream time stays within JUMP_SLACK_S of the wall clock: the
+decoder is told, before each chunk, how many samples the time since the last
+block (and any earlier time not filled by samples) can account for. A jump
+beyond that, or backwards, means the sender started afresh (a reboot, a
+second sender, a counter bug); it is a restart (`restarts`), treated like a
+reconnect: the lost samples come from the arrival clock as above. So stream
+time never runs ahead of the wall time that passed by more than
+JUMP_SLACK_S (which allows for senders that batch their frames), however
+far the sequence jumps.
+
 Counters: `counters()` returns the link's own (connects, disconnects, bytes,
-overflows) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
-gaps, lost_samples, mismatched, nonfinite), for health checks.
+overflows, paused) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
+gaps, lost_samples, restarts, mismatched, nonfinite), for health checks.
 """
 
 import collections
@@ -60,8 +75,11 @@ BACKOFF_MAX_S = 3.0
 POLL_S = 0.1
 JOIN_S = 1.0
 READ_MAX = 65536
+# How far a sequence jump may carry stream time ahead of the wall clock
+# before it counts as a restart of the sender.
+JUMP_SLACK_S = 2.0
 
-LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows")
+LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
 
 def endpoint(host: str, port: int) -> str:
@@ -93,7 +111,11 @@ class StreamSource(Source):
     """Base of byte-stream kinds. A kind implements `_loop` (run in the
     reader thread until `self._stop` is set), and may override `_prepare`
     (before the thread starts; raise SourceError for a fault that retrying
-    cannot mend), `_wake` (unblock the thread) and `_release` (after it)."""
+    cannot mend), `_wake` (unblock the thread) and `_release` (after it).
+    A kind whose link has flow control sets `pushes_back`: its reader waits
+    for room in the queue instead of dropping the oldest block."""
+
+    pushes_back = False
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -113,6 +135,9 @@ class StreamSource(Source):
         self._break = False
         self._last_arrival: Optional[float] = None
         self._carry = 0  # lost samples not yet attached to a block
+        # Wall time (in samples) since the last break that neither samples
+        # nor counted gaps have filled: what a sequence jump may stand for.
+        self._room = 0.0
         self._outage_since: Optional[float] = None
         self._tries = 0  # connect attempts in the current outage
 
@@ -154,6 +179,8 @@ class StreamSource(Source):
             return
         self._stop.set()
         self._wake()
+        with self._ready:
+            self._ready.notify_all()  # a reader waiting for room
         thread.join(JOIN_S)
         if thread.is_alive():
             log.warning("%s: reader thread did not stop within %g s", self.describe(), JOIN_S)
@@ -172,6 +199,8 @@ class StreamSource(Source):
                 self._ready.wait(left)
             block = self._queue.popleft()
             self._queued -= block.samples.shape[0]
+            if self.pushes_back:
+                self._ready.notify_all()  # room for a reader that waits
             if self._dropped:
                 # The dropped blocks came just before this one.
                 block = block._replace(lost=block.lost + self._dropped)
@@ -203,11 +232,14 @@ class StreamSource(Source):
                 self._failure = exc
                 self._ready.notify_all()
 
-    def _consume(self, data: bytes, end: bytes = b"") -> None:
-        """Decode a chunk of bytes (and a terminator the link implies, not
-        counted as received) and queue what it completes."""
+    def _consume(self, data: bytes, whole: bool = False) -> None:
+        """Decode a chunk of bytes (`whole`: one that ends every frame or
+        line in it, a datagram) and queue what it completes."""
         self._link["bytes"] += len(data)
-        self._emit_decoded(self._decoder.feed(data + end if end else data))
+        if self._last_arrival is not None:
+            wall = (time.monotonic() - self._last_arrival) * self.sample_rate
+            self._decoder.max_gap = int(self._room + wall + JUMP_SLACK_S * self.sample_rate)
+        self._emit_decoded(self._decoder.feed(data, whole))
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""
@@ -252,7 +284,12 @@ class StreamSource(Source):
             if not parts:
                 stamp = piece.timestamp_us
                 full_scale = piece.full_scale
-            lost += piece.lost
+            if piece.restart and self._last_arrival is not None:
+                # The sender started afresh: what is missing is unknown, so
+                # it is measured like an outage, from the arrival clock.
+                self._break = True
+            else:
+                lost += piece.lost
             if piece.samples.shape[0]:
                 parts.append(piece.samples)
         if parts:
@@ -267,19 +304,30 @@ class StreamSource(Source):
         now = time.monotonic()
         lost += self._carry
         self._carry = 0
-        if self._break:
-            self._break = False
-            assert self._last_arrival is not None
+        if self._last_arrival is not None:
             held = (now - self._last_arrival) * self.sample_rate - samples.shape[0]
-            lost += max(1, int(round(held)))
+            if self._break:
+                lost += max(1, int(round(held)))
+                self._room = 0.0
+            else:
+                self._room += max(0.0, held) - lost
+        self._break = False
         self._last_arrival = now
         self._put(Block(samples=samples, lost=lost, full_scale=full_scale, timestamp_us=stamp))
 
     def _put(self, block: Block) -> None:
+        size = block.samples.shape[0]
         with self._ready:
+            if self.pushes_back and self._queue and self._queued + size > self.queue_limit:
+                # Not reading is what pushes back: the kernel's receive
+                # buffer fills and TCP closes the sender's window.
+                self._link["paused"] += 1
+                while self._queue and self._queued + size > self.queue_limit and not self._stop.is_set():
+                    self._tick()
+                    self._ready.wait(POLL_S)
             self._queue.append(block)
-            self._queued += block.samples.shape[0]
-            while self._queued > self.queue_limit and len(self._queue) > 1:
+            self._queued += size
+            while not self.pushes_back and self._queued > self.queue_limit and len(self._queue) > 1:
                 old = self._queue.popleft()
                 size = old.samples.shape[0]
                 self._queued -= size

@@ -7,6 +7,10 @@ a sensor that dials in; it serves one sensor at a time, and a new connection
 replaces the current one, because a sensor that rebooted dials in again long
 before its old connection would time out.
 
+Both push back: while the measuring thread lags and the block queue is
+full, the reader stops reading, and TCP flow control slows the sender, so a
+burst (a gateway flushing its buffer) is measured whole, never dropped.
+
 Both switch TCP keepalive on (with short probe intervals where the platform
 lets us set them), so a peer that vanished without a word is eventually
 closed by the kernel. Until then a half-open connection is simply quiet, and
@@ -46,6 +50,7 @@ def keepalive(sock: socket.socket) -> None:
 
 class TcpClientSource(LinkSource):
     kind = "tcp-client"
+    pushes_back = True
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -126,6 +131,7 @@ class TcpClientSource(LinkSource):
 
 class TcpServerSource(StreamSource):
     kind = "tcp-server"
+    pushes_back = True
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)

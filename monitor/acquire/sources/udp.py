@@ -1,11 +1,11 @@
 """Kind "udp": a sensor that sends datagrams to `host:port`.
 
 Each datagram holds one or more whole frames, and is fed to the decoder as it
-came. A datagram that ends inside a frame (truncated on the way, or a sender
-bug) is counted in `truncated`. Its partial frame cannot join the next
-datagram's bytes into a frame: the CRC over such a mix fails (short of a 1 in
-2**32 collision), and the decoder drops a held partial frame as soon as a
-complete one follows it. The decoder is deliberately not reset between
+came, marked whole: nothing of it waits for the next datagram, so a false
+header claiming more bytes than the datagram has is garbage at once and
+cannot hold up the frames behind it. A datagram that ends inside a frame
+(truncated on the way, or a sender bug) is counted in `truncated` and its
+partial frame dropped. The decoder is deliberately not reset between
 datagrams: reset() also forgets the expected sequence number, and the
 sequence is what reveals a lost datagram (the most common fault on UDP), or
 a truncated frame, as a gap of exactly its samples.
@@ -40,7 +40,6 @@ class UdpSource(StreamSource):
         self.address: Optional[Tuple[str, int]] = None  # bound host and port, once open
         self._link["datagrams"] = 0
         self._link["truncated"] = 0
-        self._text = config.format == "csv"
 
     def describe(self) -> str:
         host, port = self.address or (self.config.host, self.config.port)
@@ -75,11 +74,8 @@ class UdpSource(StreamSource):
                 self._stop.wait(POLL_S)
                 continue
             self._link["datagrams"] += 1
-            if self._text and not data.endswith(b"\n"):
-                self._consume(data, b"\n")
-            else:
-                self._consume(data)
-            if self._decoder.buffered:
+            self._consume(data, whole=True)
+            if self._decoder.truncated:
                 self._link["truncated"] += 1
 
     def _release(self) -> None:
