@@ -26,6 +26,7 @@ from typing import Any, Dict, List, Optional, Tuple
 
 from ..config import MqttConfig, load_mqtt
 from ..deliver.filing import Filer, Refused
+from ..deliver.mqtt_client import connack_text, new_client, rc_value, read_password
 from ..errors import ConfigError, DeliveryError
 from ..service.posix_signals import stop_on_signals
 from .cli import EXIT_FAILURE, EXIT_OK, EXIT_USAGE
@@ -49,8 +50,6 @@ class Collector:
 
     def __init__(self, cfg: MqttConfig, filer: Filer, client_id: str,
                  reconnect_min: float = 1.0, reconnect_max: float = 30.0) -> None:
-        from ..deliver.mqtt_client import new_client, read_password
-
         self.cfg = cfg
         self.filer = filer
         self.client_id = client_id
@@ -58,6 +57,7 @@ class Collector:
         self._stopping = False
         self.refusals = 0
         password = read_password(cfg.password_file) if cfg.password_file else None
+        # It publishes nothing: paho's usual in-flight limit of 20 is moot.
         self._client = new_client(cfg, client_id, password, reconnect_min, reconnect_max, 20, clean_session=False)
         self._client.on_connect = self._on_connect
         self._client.on_subscribe = self._on_subscribe
@@ -82,9 +82,9 @@ class Collector:
     # -- paho callbacks (network thread); nothing may escape into paho --------
 
     def _on_connect(self, client: Any, userdata: Any, flags: Any, rc: Any, properties: Any = None) -> None:
-        value = getattr(rc, "value", rc)
-        if value != 0:
-            log.warning("broker %s:%d refused the connection: %s; retrying", self.cfg.host, self.cfg.port, rc)
+        if rc_value(rc) != 0:
+            log.warning("broker %s:%d refused the connection: %s; retrying", self.cfg.host, self.cfg.port,
+                        connack_text(rc))
             return
         log.info("connected to %s:%d", self.cfg.host, self.cfg.port)
         client.subscribe(self._topics)

@@ -89,7 +89,8 @@ def run_node(config, mqtt_cfg, x, block=300):
 
 
 def start_collector(mqtt_cfg, out, client_id="analyst-1"):
-    collector = CollectClient(mqtt_cfg, Filer(str(out), draw=draw_spectrum), client_id, reconnect_min=0.1, reconnect_max=0.5)
+    filer = Filer(str(out), draw=draw_spectrum)
+    collector = CollectClient(mqtt_cfg, filer, client_id, reconnect_min=0.1, reconnect_max=0.5)
     collector.start()
     assert collector.subscribed.wait(10), "the collector did not subscribe"
     return collector
