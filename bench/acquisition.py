@@ -28,9 +28,9 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from monitor.config import SourceConfig  # noqa: E402
-from monitor.decoders import make_decoder  # noqa: E402
-from monitor.decoders.frame import encode_frame  # noqa: E402
-from monitor.recording import RecordingWriter, open_recording  # noqa: E402
+from monitor.acquire.decoders import make_decoder  # noqa: E402
+from monitor.acquire.decoders.frame import encode_frame  # noqa: E402
+from monitor.acquire.recording import RecordingWriter, open_recording  # noqa: E402
 
 RATE = 25600
 CHANNELS = ("x", "y", "z")
@@ -107,7 +107,7 @@ def replay_peak_mb(path: str) -> Tuple[float, float]:
 
 
 def replay_child(path: str) -> None:
-    from monitor.sources.file import FileSource
+    from monitor.acquire.sources.file import FileSource
 
     config = SourceConfig(kind="file", sample_rate=0.0, channels=CHANNELS, unit="g", scale=(1.0,) * 3, path=path)
     source = FileSource(config)

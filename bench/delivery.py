@@ -59,12 +59,13 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 import paho.mqtt.client as mqtt  # noqa: E402
 
-from monitor.bench import _BytesSource, _bench_config, run_pipeline, synthetic_samples, wire_chunks  # noqa: E402
+from monitor.commands.bench import (  # noqa: E402
+    bench_config, bench_monitor, run_monitor, run_pipeline, synthetic_samples, wire_chunks,
+)
 from monitor.config import Config, parse  # noqa: E402
-from monitor.delivery.base import Payload, Sink  # noqa: E402
-from monitor.delivery.mqtt import MqttSink  # noqa: E402
-from monitor.pipeline import Monitor  # noqa: E402
-from monitor.state import EventIds  # noqa: E402
+from monitor.deliver.base import Payload, Sink  # noqa: E402
+from monitor.deliver.mqtt import MqttSink  # noqa: E402
+from monitor.deliver.event_ids import EventIds  # noqa: E402
 
 RATE = 25600.0
 CHANNELS = ("x", "y", "z")
@@ -165,9 +166,8 @@ class _Collecting(Sink):
 def calibrate(config: Config, chunks: List[bytes]) -> Dict[str, float]:
     """The median of each noise band's value over the first chunks, with a
     summary after every result."""
-    cfg = dataclasses.replace(_bench_config(config), summary_interval=1e-6)
     sink = _Collecting()
-    Monitor(cfg, _BytesSource(cfg.source, chunks), sink).run()
+    run_monitor(bench_monitor(dataclasses.replace(config, summary_interval=1e-6), chunks, sink))
     values: Dict[str, List[float]] = {ch: [] for ch in CHANNELS}
     for summary in sink.summaries:
         for band in summary["bands"]:
@@ -259,15 +259,13 @@ def queue_bytes(queue_dir: str) -> int:
 def run_real_sink(config: Config, chunks: List[bytes]) -> Tuple[float, TimedMqttSink, TimedEventIds, float]:
     """Wall seconds of the pipeline with the real MQTT sink (its close not
     counted); the sink; the event ids; peak resident MB during the run."""
-    cfg = _bench_config(config)
+    cfg = bench_config(config)
     assert cfg.mqtt is not None
     ids = TimedEventIds(cfg.mqtt.queue_dir)  # stored with fsyncs per id, as `bandwatch run` does
     sink = TimedMqttSink(cfg.mqtt, cfg.node)
-    monitor = Monitor(cfg, _BytesSource(cfg.source, chunks), sink, ids=ids)
+    monitor = bench_monitor(cfg, chunks, sink, ids=ids)
     reset_peak_memory()
-    start = time.perf_counter()
-    monitor.run()
-    seconds = time.perf_counter() - start - sink.close_seconds
+    seconds = run_monitor(monitor) - sink.close_seconds
     return seconds, sink, ids, peak_memory_mb()
 
 
@@ -432,7 +430,7 @@ def main() -> int:
         config = with_scale(config)
         calib_chunks = chunks[: max(1, int(len(chunks) * min(1.0, CALIBRATION_S / seconds)))]
         warnings = calibrate(config, calib_chunks)
-        config = with_scale(make_config(closed, outage_dir, args.queue_limit, alerts))
+        config = with_scale(make_config(closed, outage_dir, args.queue_limit, warnings))
         print(f"  {wire_mb:.1f} MB of int16 frames, held in memory, made in {time.perf_counter() - t0:.1f} s; "
               "noise band warning limits (their medians): " + ", ".join(f"{ch} {v:.4g} g" for ch, v in warnings.items()))
 
@@ -449,7 +447,7 @@ def main() -> int:
             # The same sink with the broker up: what every event costs anyway.
             up_port = closed_port()
             up_dir = os.path.join(queue_root, "connected")
-            up_cfg = with_scale(make_config(up_port, up_dir, args.queue_limit, alerts))
+            up_cfg = with_scale(make_config(up_port, up_dir, args.queue_limit, warnings))
             broker = Mosquitto(program, up_port, workdir)
             try:
                 up_s, up_sink, up_ids, up_mem = run_real_sink(up_cfg, chunks)

@@ -62,7 +62,7 @@ sys.path.insert(0, ROOT)
 import paho.mqtt.client as mqtt  # noqa: E402
 
 from monitor.config import Config, load  # noqa: E402
-from monitor.decoders.frame import encode_frame  # noqa: E402
+from monitor.acquire.decoders.frame import encode_frame  # noqa: E402
 from soak import Mosquitto, _free_port, find_mosquitto  # noqa: E402
 
 FRAME_SAMPLES = 512

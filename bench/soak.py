@@ -62,11 +62,12 @@ import numpy as np
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 from monitor.config import Config, parse  # noqa: E402
-from monitor.delivery.base import Payload, Sink  # noqa: E402
-from monitor.payloads import encode  # noqa: E402
-from monitor.pipeline import Monitor  # noqa: E402
-from monitor.sources.base import Block, Source  # noqa: E402
-from monitor.state import EventIds  # noqa: E402
+from monitor.deliver.base import Payload, Sink  # noqa: E402
+from monitor.deliver.payloads import encode  # noqa: E402
+from monitor.service.monitor import Monitor  # noqa: E402
+from monitor.acquire.block import Block  # noqa: E402
+from monitor.acquire.sources.base import Source  # noqa: E402
+from monitor.deliver.event_ids import EventIds  # noqa: E402
 
 RATE = 5120.0
 BLOCK = 512  # samples per channel per read: 0.1 s
@@ -296,7 +297,7 @@ class SoakSource(Source):
         lost, self._lost = self._lost, 0
         self._pos += n
         self._clock.now += n / self.sample_rate
-        return Block(samples, lost)
+        return Block(samples=samples, lost=lost)
 
     def _do(self, action: Action, timeout: float) -> None:
         if action.kind == "rise":
@@ -474,7 +475,7 @@ class Soak:
         self.clock = StreamClock()
         self.source = SoakSource(self.config, self.end_s, self.actions, self.clock, self._on_action, self._on_time)
         if broker is not None:
-            from monitor.delivery.mqtt import MqttSink
+            from monitor.deliver.mqtt import MqttSink
 
             assert self.config.mqtt is not None
             # Short reconnect delays: outages last seconds of wall time here.

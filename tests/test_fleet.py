@@ -21,7 +21,7 @@ import time
 from dataclasses import replace
 
 from monitor.config import MqttConfig
-from monitor.delivery.mqtt import MqttSink
+from monitor.deliver.mqtt import MqttSink
 from mqtt_broker import Broker, Collector, make_certs, make_client_cert, wait_for
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -132,7 +132,7 @@ def test_node_certificates_name_the_node(tmp_path):
 CHILD = r"""
 import json, sys, time
 from monitor.config import MqttConfig
-from monitor.delivery.mqtt import MqttSink
+from monitor.deliver.mqtt import MqttSink
 args = json.loads(sys.argv[1])
 sink = MqttSink(MqttConfig(**args["cfg"]), args["node"], reconnect_min=0.1, reconnect_max=0.5)
 sink.open({"state": "online"}, {"state": "offline"})

@@ -1,0 +1,351 @@
+"""Byte-stream sources: a reader thread turns bytes into Blocks.
+
+Every kind that receives bytes from a sensor (serial, tcp-client, tcp-server,
+udp) shares this machinery:
+
+* A dedicated reader thread reads large chunks, feeds them to the decoder for
+  `[source] format` and hands complete Blocks to the measuring thread through
+  a bounded queue. `read(timeout)` only ever waits on that queue.
+
+* The queue holds about two seconds of samples (capped in memory for fast,
+  wide streams). When it is full the oldest block is dropped, its samples are
+  added to the `lost` of the block that follows it, and `overflows` counts
+  it: a peer that floods the link, or a measuring thread that falls behind,
+  costs samples but never memory, and stream time still counts every sample.
+
+* Link kinds reconnect after a failure with exponential backoff (0.1 s,
+  doubling, at most 3 s) and log once per outage, not once per attempt.
+
+Breaks in the link. After any reconnect (a replug, a new TCP connection) the
+decoder is reset, and the first Block after it carries in `lost` the number of
+samples per channel the outage would have held: the time from the arrival of
+the last block before the break to the arrival of the first block after it,
+less that block's own duration, times the sample rate, rounded, and at least
+1. Block keeps its two fields; a non-zero `lost` is already what tells the
+pipeline that no FFT frame may span this point, and counting the outage in
+samples keeps stream time in step with real time across it. The arrival clock
+is used rather than frame timestamps because a sensor that rebooted may have
+restarted its clock.
+
+Counters: `counters()` returns the link's own (connects, disconnects, bytes,
+overflows) merged with the decoder's (frames, corrupt_frames, corrupt_bytes,
+gaps, lost_samples, mismatched, nonfinite), for health checks.
+"""
+
+import collections
+import logging
+import socket
+import threading
+import time
+from typing import Any, Callable, Deque, Dict, List, Optional
+
+import numpy as np
+
+from ...config import SourceConfig
+from ..block import Block
+from ..decoders import make_decoder
+from ...errors import SourceError
+from .base import Source
+
+log = logging.getLogger("bandwatch.sources")
+
+QUEUE_SECONDS = 2.0
+# Upper bound on queued values (samples x channels): 32 MiB of float64, so a
+# fast, wide stream cannot take the memory of a small board.
+QUEUE_MAX_VALUES = 1 << 22
+BACKOFF_START_S = 0.1
+BACKOFF_MAX_S = 3.0
+# Longest any blocking call in a reader thread waits before it looks at the
+# stop flag again; keeps close() well within its one second.
+POLL_S = 0.1
+JOIN_S = 1.0
+READ_MAX = 65536
+
+LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows")
+
+
+def endpoint(host: str, port: int) -> str:
+    """host:port as people write it, with brackets around an IPv6 address."""
+    return f"[{host}]:{port}" if ":" in host else f"{host}:{port}"
+
+
+def bind(kind: str, host: str, port: int, socktype: int,
+         setup: Callable[[socket.socket], None]) -> socket.socket:
+    """A socket of `socktype` bound to host:port, after `setup` (options,
+    listen) ran on it; a SourceError naming the kind and address otherwise."""
+    try:
+        family, socktype, proto, _, address = socket.getaddrinfo(
+            host, port, type=socktype, flags=socket.AI_PASSIVE
+        )[0]
+        sock = socket.socket(family, socktype, proto)
+    except OSError as exc:
+        raise SourceError(f"{kind} source: cannot bind {endpoint(host, port)}: {exc}") from exc
+    try:
+        setup(sock)
+        sock.bind(address)
+    except OSError as exc:
+        sock.close()
+        raise SourceError(f"{kind} source: cannot bind {endpoint(host, port)}: {exc}") from exc
+    return sock
+
+
+class StreamSource(Source):
+    """Base of byte-stream kinds. A kind implements `_loop` (run in the
+    reader thread until `self._stop` is set), and may override `_prepare`
+    (before the thread starts; raise SourceError for a fault that retrying
+    cannot mend), `_wake` (unblock the thread) and `_release` (after it)."""
+
+    def __init__(self, config: SourceConfig) -> None:
+        super().__init__(config)
+        self._decoder = make_decoder(config.format, self.channels)
+        self._link: Dict[str, int] = dict.fromkeys(LINK_COUNTERS, 0)
+        limit = int(round(QUEUE_SECONDS * config.sample_rate))
+        self.queue_limit = max(1, min(limit, QUEUE_MAX_VALUES // max(1, self.channels)))
+        self._queue: Deque[Block] = collections.deque()
+        self._queued = 0  # samples per channel now in the queue
+        self._dropped = 0  # samples dropped just before the queue's head
+        self._ready = threading.Condition()
+        self._stop = threading.Event()
+        self._thread: Optional[threading.Thread] = None
+        self._beat = time.monotonic()
+        self._failure: Optional[BaseException] = None
+        # Break bookkeeping, touched by the reader thread only.
+        self._break = False
+        self._last_arrival: Optional[float] = None
+        self._carry = 0  # lost samples not yet attached to a block
+        self._outage_since: Optional[float] = None
+        self._tries = 0  # connect attempts in the current outage
+
+    # ------------------------------------------------------------ interface
+
+    @property
+    def queued(self) -> int:
+        """Samples per channel waiting in the queue now."""
+        with self._ready:
+            return self._queued
+
+    def heartbeat(self) -> float:
+        """When the reader thread last went round its loop (-inf once it died)."""
+        thread = self._thread
+        if thread is None or not thread.is_alive():
+            return -float("inf")
+        return self._beat
+
+    def _tick(self) -> None:
+        self._beat = time.monotonic()
+
+    def counters(self) -> Dict[str, int]:
+        out = dict(self._link)
+        out.update(self._decoder.counters)
+        return out
+
+    def _open(self) -> None:
+        if self._thread is not None:
+            raise SourceError(f"{self.describe()}: already open")
+        self._stop.clear()
+        self._failure = None
+        self._prepare()
+        self._thread = threading.Thread(target=self._run, name=f"bandwatch-{self.kind}", daemon=True)
+        self._thread.start()
+
+    def _close(self) -> None:
+        thread = self._thread
+        if thread is None:
+            return
+        self._stop.set()
+        self._wake()
+        thread.join(JOIN_S)
+        if thread.is_alive():
+            log.warning("%s: reader thread did not stop within %g s", self.describe(), JOIN_S)
+        self._thread = None
+        self._release()
+
+    def _read(self, timeout: float) -> Optional[Block]:
+        deadline = time.monotonic() + max(0.0, timeout)
+        with self._ready:
+            while not self._queue:
+                if self._failure is not None:
+                    raise SourceError(f"{self.describe()}: reader stopped: {self._failure!r}") from self._failure
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    return None
+                self._ready.wait(left)
+            block = self._queue.popleft()
+            self._queued -= block.samples.shape[0]
+            if self._dropped:
+                # The dropped blocks came just before this one.
+                block = block._replace(lost=block.lost + self._dropped)
+                self._dropped = 0
+        return block
+
+    # ------------------------------------------------------- kind hooks
+
+    def _prepare(self) -> None:
+        pass
+
+    def _loop(self) -> None:
+        raise NotImplementedError
+
+    def _wake(self) -> None:
+        pass
+
+    def _release(self) -> None:
+        pass
+
+    # ------------------------------------------- reader-thread helpers
+
+    def _run(self) -> None:
+        try:
+            self._loop()
+        except BaseException as exc:  # a bug, not a link fault: say so and stop
+            log.exception("%s: reader thread failed", self.describe())
+            with self._ready:
+                self._failure = exc
+                self._ready.notify_all()
+
+    def _consume(self, data: bytes, end: bytes = b"") -> None:
+        """Decode a chunk of bytes (and a terminator the link implies, not
+        counted as received) and queue what it completes."""
+        self._link["bytes"] += len(data)
+        self._emit_decoded(self._decoder.feed(data + end if end else data))
+
+    def _connected(self, peer: str) -> None:
+        """A new link is up: count it, end the outage, start decoding afresh."""
+        self._link["connects"] += 1
+        self._decoder.reset()
+        self._break = self._last_arrival is not None
+        if self._outage_since is not None:
+            down = time.monotonic() - self._outage_since
+            tries = f", {self._tries} tries" if self._tries > 1 else ""
+            log.info("%s: link up (%s) after %.1f s down%s", self.describe(), peer, down, tries)
+        else:
+            log.info("%s: link up (%s)", self.describe(), peer)
+        self._outage_since = None
+        self._tries = 0
+
+    def _disconnected(self, reason: str) -> None:
+        self._link["disconnects"] += 1
+        self._failed(f"link lost ({reason})")
+
+    def _failed(self, what: str) -> None:
+        """One failed connect or a lost link: logged once per outage."""
+        if self._outage_since is None:
+            self._outage_since = time.monotonic()
+            log.warning("%s: %s; waiting for it to come back", self.describe(), what)
+        else:
+            log.debug("%s: %s", self.describe(), what)
+
+    def _emit_decoded(self, decoded: List[Block]) -> None:
+        """Join consecutive decoded pieces into as few blocks as possible,
+        starting a new block wherever a piece follows a gap. A block's
+        timestamp is that of its first piece."""
+        parts: List[np.ndarray] = []
+        lost = 0
+        stamp: Optional[int] = None
+        full_scale: Optional[float] = None
+        for piece in decoded:
+            # A new block at a gap, and where the sample type changes (so a
+            # block has one full scale for the clipping check).
+            if parts and (piece.lost or piece.full_scale != full_scale):
+                self._emit(parts, lost, stamp, full_scale)
+                parts, lost = [], 0
+            if not parts:
+                stamp = piece.timestamp_us
+                full_scale = piece.full_scale
+            lost += piece.lost
+            if piece.samples.shape[0]:
+                parts.append(piece.samples)
+        if parts:
+            self._emit(parts, lost, stamp, full_scale)
+        else:
+            self._carry += lost
+
+    def _emit(self, parts: List[np.ndarray], lost: int, stamp: Optional[int],
+              full_scale: Optional[float] = None) -> None:
+        samples = parts[0] if len(parts) == 1 else np.concatenate(parts)
+        samples = np.asarray(samples, dtype=np.float64)
+        now = time.monotonic()
+        lost += self._carry
+        self._carry = 0
+        if self._break:
+            self._break = False
+            assert self._last_arrival is not None
+            held = (now - self._last_arrival) * self.sample_rate - samples.shape[0]
+            lost += max(1, int(round(held)))
+        self._last_arrival = now
+        self._put(Block(samples=samples, lost=lost, full_scale=full_scale, timestamp_us=stamp))
+
+    def _put(self, block: Block) -> None:
+        with self._ready:
+            self._queue.append(block)
+            self._queued += block.samples.shape[0]
+            while self._queued > self.queue_limit and len(self._queue) > 1:
+                old = self._queue.popleft()
+                size = old.samples.shape[0]
+                self._queued -= size
+                self._dropped += size + old.lost
+                self._link["overflows"] += 1
+            self._ready.notify()
+
+    def _backoff(self, delay: float) -> float:
+        """Wait `delay` (or until stopped) and return the next delay."""
+        self._tick()
+        self._stop.wait(delay)
+        self._tick()
+        return min(delay * 2.0, BACKOFF_MAX_S)
+
+
+class LinkSource(StreamSource):
+    """A link that is dialled: open it, read until it fails, open it again.
+
+    A kind implements `_connect` (return an open handle, None if stopped
+    meanwhile, or raise OSError), `_receive` (bytes read within POLL_S, b""
+    if none; raise OSError when the link is gone) and `_hangup`.
+    """
+
+    def _loop(self) -> None:
+        delay = BACKOFF_START_S
+        while not self._stop.is_set():
+            self._tick()
+            self._tries += 1
+            try:
+                handle = self._connect()
+            except OSError as exc:
+                self._failed(f"cannot connect ({exc})")
+                delay = self._backoff(delay)
+                continue
+            if handle is None:
+                continue
+            self._connected(self._peer(handle))
+            received = 0
+            reason = ""
+            try:
+                while not self._stop.is_set():
+                    self._tick()
+                    data = self._receive(handle)
+                    if data:
+                        received += len(data)
+                        self._consume(data)
+            except OSError as exc:
+                reason = str(exc) or type(exc).__name__
+            finally:
+                self._hangup(handle)
+            if self._stop.is_set():
+                break
+            self._disconnected(reason)
+            if received:
+                # The link worked: a fresh outage starts the backoff afresh.
+                delay = BACKOFF_START_S
+            delay = self._backoff(delay)
+
+    def _connect(self) -> Any:
+        raise NotImplementedError
+
+    def _receive(self, handle: Any) -> bytes:
+        raise NotImplementedError
+
+    def _hangup(self, handle: Any) -> None:
+        raise NotImplementedError
+
+    def _peer(self, handle: Any) -> str:
+        return self.describe()

@@ -1,0 +1,1 @@
+"""Analysis: windows, spectra, band values, speed, peaks, envelope and time-domain statistics."""

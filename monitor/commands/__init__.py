@@ -1,0 +1,1 @@
+"""The `bandwatch` command and its subcommands, one module each."""

@@ -1,0 +1,1 @@
+"""Judging values: level machines for bands and health checks, learned baselines."""
