@@ -64,6 +64,12 @@ BACKOFF_MAX_S = 3.0
 POLL_S = 0.1
 JOIN_S = 1.0
 READ_MAX = 65536
+# After a read that emptied a TCP socket, the reader lets this long of bytes
+# gather in the kernel's buffer before it reads again: one read, decode and
+# hand-off for every few frames instead of one per frame, for at most this
+# much more delay. (Serial and UDP read at once: a tty's buffer is small,
+# and each datagram is its own read.)
+COALESCE_S = 0.05
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
@@ -102,6 +108,7 @@ class StreamSource(Source):
     for room in the queue instead of dropping the oldest block."""
 
     pushes_back = False
+    coalesce_s = 0.0  # wait after a short read (COALESCE_S for TCP)
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -180,8 +187,7 @@ class StreamSource(Source):
                 if left <= 0:
                     return None
                 self._ready.wait(left)
-            block = self._queue.popleft()
-            self._queued -= block.samples.shape[0]
+            block = self._take()
             if self.pushes_back:
                 self._ready.notify_all()  # room for a reader that waits
             if self._dropped:
@@ -189,6 +195,31 @@ class StreamSource(Source):
                 block = block._replace(lost=block.lost + self._dropped)
                 self._dropped = 0
         return block
+
+    def _take(self) -> Block:
+        """The queue's head joined with the blocks behind it that continue it
+        without a break (under the lock): the measuring thread then wakes,
+        checks health and writes the ring once per batch, not once per frame.
+        A block with `lost` starts a new batch, and so does one of another
+        full scale or whose timestamps come or go, so the batch's first
+        timestamp and full scale hold for all of it. Only integer samples
+        are joined: a NaN or infinity in float samples drops its block whole
+        (Source.read), and a batch would widen that drop."""
+        queue = self._queue
+        head = queue.popleft()
+        parts = [head.samples]
+        if head.full_scale is not None:
+            stamped = head.timestamp_us is not None
+            while queue:
+                nxt = queue[0]
+                if nxt.lost or nxt.full_scale != head.full_scale or (nxt.timestamp_us is not None) != stamped:
+                    break
+                parts.append(queue.popleft().samples)
+        n = sum(p.shape[0] for p in parts)
+        self._queued -= n
+        if len(parts) > 1:
+            head = head._replace(samples=np.concatenate(parts))
+        return head
 
     # ------------------------------------------------------- kind hooks
 
@@ -220,6 +251,8 @@ class StreamSource(Source):
         counted as received) and queue what it completes."""
         self._link["bytes"] += len(data)
         self._emit_decoded(self._decoder.feed(data + end if end else data))
+        if self.coalesce_s and len(data) < READ_MAX:
+            self._stop.wait(self.coalesce_s)
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""
