@@ -69,7 +69,7 @@ READ_MAX = 65536
 # hand-off for every few frames instead of one per frame, for at most this
 # much more delay. (Serial and UDP read at once: a tty's buffer is small,
 # and each datagram is its own read.)
-COALESCE_S = 0.05
+COALESCE_S = 0.1
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
