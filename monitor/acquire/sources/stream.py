@@ -5,7 +5,11 @@ udp) shares this machinery:
 
 * A dedicated reader thread reads large chunks, feeds them to the decoder for
   `[source] format` and hands complete Blocks to the measuring thread through
-  a bounded queue. `read(timeout)` only ever waits on that queue.
+  a bounded queue. `read(timeout)` only ever waits on that queue, and takes
+  at once every queued block that continues the first without a break, as
+  one Block: the per-block work (wake-up, health, ring writes) is done per
+  batch, not per frame. TCP readers wait COALESCE_S after a read that
+  emptied the socket, so each read takes many frames.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
   wide streams). When it is full, a link that can push back (TCP) stops
@@ -66,10 +70,11 @@ JOIN_S = 1.0
 READ_MAX = 65536
 # After a read that emptied a TCP socket, the reader lets this long of bytes
 # gather in the kernel's buffer before it reads again: one read, decode and
-# hand-off for every few frames instead of one per frame, for at most this
-# much more delay. (Serial and UDP read at once: a tty's buffer is small,
-# and each datagram is its own read.)
-COALESCE_S = 0.1
+# hand-off per 0.2 s (about one per result at common settings) instead of one
+# per frame, for at most this much more delay. A read that fills READ_MAX
+# reads again at once. (Serial and UDP read at once: a tty's buffer is
+# small, and each datagram is its own read.)
+COALESCE_S = 0.2
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
