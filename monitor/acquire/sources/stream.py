@@ -6,10 +6,11 @@ udp) shares this machinery:
 * A dedicated reader thread reads large chunks, feeds them to the decoder for
   `[source] format` and hands complete Blocks to the measuring thread through
   a bounded queue. `read(timeout)` only ever waits on that queue, and takes
-  at once every queued block that continues the first without a break, as
-  one Block: the per-block work (wake-up, health, ring writes) is done per
-  batch, not per frame. TCP readers wait COALESCE_S after a read that
-  emptied the socket, so each read takes many frames.
+  at once the queued blocks that continue the first without a break (up to
+  0.25 s of samples), as one Block: the per-block work (wake-up, health,
+  ring writes) is done per batch, not per frame. TCP readers wait
+  COALESCE_S after a read that emptied the socket, so each read takes many
+  frames.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
   wide streams). When it is full, a link that can push back (TCP) stops
@@ -61,6 +62,9 @@ QUEUE_SECONDS = 2.0
 # Upper bound on queued values (samples x channels): 32 MiB of float64, so a
 # fast, wide stream cannot take the memory of a small board.
 QUEUE_MAX_VALUES = 1 << 22
+# A batch joins at most this share of the queue (0.25 s of samples): enough
+# to wake once per several frames, and its copy stays small.
+BATCH_SHARE = 8
 BACKOFF_START_S = 0.1
 BACKOFF_MAX_S = 3.0
 # Longest any blocking call in a reader thread waits before it looks at the
@@ -121,6 +125,7 @@ class StreamSource(Source):
         self._link: Dict[str, int] = dict.fromkeys(LINK_COUNTERS, 0)
         limit = int(round(QUEUE_SECONDS * config.sample_rate))
         self.queue_limit = max(1, min(limit, QUEUE_MAX_VALUES // max(1, self.channels)))
+        self.batch_limit = max(1, self.queue_limit // BATCH_SHARE)
         self._queue: Deque[Block] = collections.deque()
         self._queued = 0  # samples per channel now in the queue
         self._dropped = 0  # samples dropped just before the queue's head
@@ -213,14 +218,17 @@ class StreamSource(Source):
         queue = self._queue
         head = queue.popleft()
         parts = [head.samples]
+        n = head.samples.shape[0]
         if head.full_scale is not None:
             stamped = head.timestamp_us is not None
             while queue:
                 nxt = queue[0]
                 if nxt.lost or nxt.full_scale != head.full_scale or (nxt.timestamp_us is not None) != stamped:
                     break
+                if n + nxt.samples.shape[0] > self.batch_limit:
+                    break  # the copy a batch makes stays small
                 parts.append(queue.popleft().samples)
-        n = sum(p.shape[0] for p in parts)
+                n += nxt.samples.shape[0]
         self._queued -= n
         if len(parts) > 1:
             head = head._replace(samples=np.concatenate(parts))
