@@ -333,10 +333,13 @@ class CountingSink(Sink):
         self.inner = inner
         self.events: Counter = Counter()
         self.sent = 0
+        self.evidence_sent = 0  # spectra and captures
 
     queued = property(lambda self: self.inner.queued)  # type: ignore[assignment]
     dropped = property(lambda self: self.inner.dropped)  # type: ignore[assignment]
     held = property(lambda self: self.inner.held)  # type: ignore[assignment]
+    evidence_queued = property(lambda self: self.inner.evidence_queued)  # type: ignore[assignment]
+    evidence_dropped = property(lambda self: self.inner.evidence_dropped)  # type: ignore[assignment]
 
     def storage_fault(self) -> bool:
         return self.inner.storage_fault()
@@ -351,6 +354,8 @@ class CountingSink(Sink):
         if suffix == "event":
             self.sent += 1
             self.events[(payload["name"], payload["level"])] += 1
+        elif suffix in ("spectrum", "capture"):
+            self.evidence_sent += 1
         self.inner.send(suffix, payload)
 
     def close(self, offline: Payload) -> None:
@@ -533,10 +538,12 @@ class Soak:
             self._next_checkpoint = (math.floor(stream_s / CHECKPOINT_S) + 1) * CHECKPOINT_S
 
     def _wait_delivered(self) -> bool:
-        """With a broker: wait until it is connected and has confirmed every event."""
+        """With a broker: wait until it is connected and has confirmed every
+        event, spectrum and capture."""
         if self.broker is None:
             return True
-        return _wait(lambda: self.sink.connected and self.sink.queued == 0, WAIT_S)
+        return _wait(lambda: self.sink.connected and self.sink.queued == 0 and self.sink.evidence_queued == 0,
+                     WAIT_S)
 
     def _checkpoint(self, stream_s: float) -> None:
         self._wait_delivered()
@@ -603,6 +610,11 @@ def check_bounds(soak: Soak) -> List[Tuple[str, str, bool]]:
         bounds.append(("delivery", f"{soak.sink.sent} events sent, {confirmed} confirmed by the broker, "
                                    f"{inner.queued} queued, {inner.dropped} dropped",
                        confirmed == soak.sink.sent and inner.queued == 0 and inner.dropped == 0))
+        evidence = getattr(inner, "evidence_published", 0)
+        bounds.append(("evidence", f"{soak.sink.evidence_sent} spectra and captures sent, {evidence} confirmed, "
+                                   f"{inner.evidence_queued} queued, {inner.evidence_dropped} dropped",
+                       evidence == soak.sink.evidence_sent and inner.evidence_queued == 0
+                       and inner.evidence_dropped == 0))
     return bounds
 
 

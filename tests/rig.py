@@ -1,11 +1,13 @@
 """The shared rig for the measuring-path tests: a two-channel simulator
-config (invented values, a choice of this project), a capture scenario and a
-list-collecting sink."""
+config (invented values, a choice of this project), a capture scenario, a
+list-collecting sink and a run of the monitor over samples in memory."""
 
 import numpy as np
 
+from monitor.acquire.sources.memory import ArraySource
 from monitor.deliver.base import Sink
 from monitor.deliver.payloads import encode
+from monitor.service.monitor import Monitor
 
 FS = 2048.0
 BASE = """
@@ -47,8 +49,17 @@ class ListSink(Sink):
         return [p for s, p in self.messages if s == suffix]
 
 
-# A band on the 50 Hz tone of `scenario`, and a raw capture around its rises.
-CAPTURE = BASE + """
+def run(config, samples, **kw):
+    """The monitor over `samples` (n, channels) to their end, into a ListSink."""
+    sink = ListSink()
+    monitor = Monitor(config, ArraySource(config.source, samples, **kw), sink)
+    monitor.source.open()
+    monitor.run()
+    return monitor, sink
+
+
+# A band on the 50 Hz tone of `scenario`, rising at once.
+TONE_BAND = """
 [[band]]
 name = "tone"
 channel = "x"
@@ -57,7 +68,9 @@ quantity = "acceleration"
 warning = 1.0
 alarm = 3.0
 delay = 0.0
-[capture]
+"""
+# That band, and a raw capture around its rises.
+CAPTURE = BASE + TONE_BAND + """[capture]
 seconds = 4.0
 after = 2.0
 keep = 2

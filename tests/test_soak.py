@@ -47,7 +47,7 @@ def test_an_hour_of_stream_holds_every_bound():
     output = proc.stdout + proc.stderr
     assert proc.returncode == 0, output
     bounds = _bounds(proc.stdout)
-    assert set(bounds) >= {"rss", "fds", "threads", "schedule", "delivery"}, output
+    assert set(bounds) >= {"rss", "fds", "threads", "schedule", "delivery", "evidence"}, output
     assert all(verdict == "ok" for _, verdict in bounds.values()), output
     assert proc.stdout.rstrip().endswith("soak: ok"), output
 
@@ -62,6 +62,10 @@ def test_an_hour_of_stream_holds_every_bound():
     # Every event reached the broker across the outages, and there were outages.
     sent, confirmed = map(int, re.search(r"(\d+) events sent, (\d+) confirmed by the broker, 0 queued, 0 dropped",
                                          bounds["delivery"][0]).groups())
+    assert sent == confirmed > 0
+    # And every spectrum and capture the band rises sent.
+    sent, confirmed = map(int, re.search(r"(\d+) spectra and captures sent, (\d+) confirmed, 0 queued, 0 dropped",
+                                         bounds["evidence"][0]).groups())
     assert sent == confirmed > 0
     seen, scheduled = map(int, re.search(r"outages seen (\d+)/(\d+)", bounds["schedule"][0]).groups())
     assert seen == scheduled >= 4  # one per 15 minutes of stream time

@@ -71,7 +71,15 @@ class SpectralStage:
         self._ring = np.zeros((averages, channels, size // 2 + 1))
         self._filled = 0
         self._next = 0
-        self._frame = np.empty((channels, size))
+        self._frame = np.zeros((channels, size))
+        # The transform writes into one buffer kept for the stage where numpy
+        # takes `out` (2.0 and later): no fresh 16-byte-per-line result and
+        # its page faults every hop. Older numpy allocates it each time.
+        self._spectrum: Optional[np.ndarray] = np.empty((channels, size // 2 + 1), dtype=complex)
+        try:
+            np.fft.rfft(self._frame, axis=1, out=self._spectrum)
+        except TypeError:
+            self._spectrum = None
 
     def reset(self) -> None:
         """Forget every frame (after an outage longer than a result's span)."""
@@ -91,9 +99,12 @@ class SpectralStage:
         mean /= self.size
         np.subtract(frame, mean, out=self._frame)
         self._frame *= self.window.samples
-        spectrum = np.fft.rfft(self._frame, axis=1)
+        if self._spectrum is not None:
+            spectrum = np.fft.rfft(self._frame, axis=1, out=self._spectrum)
+        else:
+            spectrum = np.fft.rfft(self._frame, axis=1)
         # |X|^2 as the sum of squared real and imaginary parts, squared in
-        # place in a float view of the transform's own fresh result.
+        # place in a float view of the transform (nothing else reads it).
         parts = spectrum.view(np.float64)
         np.square(parts, out=parts)
         power = self._ring[self._next]

@@ -108,6 +108,12 @@ def _parser() -> argparse.ArgumentParser:
     reset = with_config("reset-baseline", "forget learned baselines, so the service learns them afresh "
                         "(then: systemctl reload bandwatch)")
     reset.add_argument("bands", nargs="*", metavar="BAND", help="band names (default: every band with a baseline)")
+    collect = with_config("collect", "file the events, spectra, captures and summaries of every node under "
+                          "the [mqtt] prefix into a folder, for the analyst")
+    collect.add_argument("-o", "--output", required=True, metavar="DIR",
+                         help="the folder the messages are filed into, by node (made if missing)")
+    collect.add_argument("--client-id", metavar="ID", help="MQTT client id of the persistent session "
+                         "(default: fixed for this machine, prefix and folder)")
     b = with_config("bench", "measure how many times faster than real time the pipeline runs")
     b.add_argument("--seconds", type=float, default=120.0, metavar="S",
                    help="seconds of simulated signal to run through (default: 120)")
@@ -135,6 +141,10 @@ def main(argv: Optional[List[str]] = None) -> int:
 def _main(argv: Optional[List[str]]) -> int:
     args = _parser().parse_args(argv)
     _setup_logging(args.log_level)
+    if args.command == "collect":  # reads only [mqtt]: runs away from any node
+        from .collect import collect_command
+
+        return collect_command(args.config, args.output, args.client_id)
     try:
         # replay stands the recording in for any source, and bench and
         # reset-baseline never open it: only the others need a file
@@ -355,6 +365,11 @@ def print_check(config: Config, out: TextIO) -> None:
         for line in _learned_lines(config):
             w(line)
     w(f"health: stale after {config.health.stale:g} s without samples\n")
+    ev = config.evidence
+    when = [label for label, on in (("with each band rise", ev.spectrum_on_rise),
+                            (f"every {ev.spectrum_interval:g} s", ev.spectrum_interval > 0)) if on]
+    top = "Nyquist" if ev.spectrum_top_hz is None else f"{ev.spectrum_top_hz:g} Hz"
+    w(f"spectra: {' and '.join(when) or 'none'}, lines up to {top}\n")
     w(memory.summary(config))
     if config.mqtt is None:
         w("output: JSON lines on stdout (no [mqtt] section)\n")

@@ -8,7 +8,7 @@ import from `monitor.config`.
 
 from ..analyse.units import quantity_unit
 from ..errors import ConfigError
-from .load import load, parse
+from .load import load, load_mqtt, parse
 from .rates import check_rate
 from .schema import (
     FORMATS,
@@ -25,6 +25,7 @@ from .schema import (
     CaptureConfig,
     Config,
     EnvelopeConfig,
+    EvidenceConfig,
     HealthConfig,
     MqttConfig,
     SimulatorConfig,
@@ -36,7 +37,7 @@ from .schema import (
 __all__ = [
     "FORMATS", "MAX_CHANNELS", "MAX_SAMPLE_RATE", "QUANTITIES", "QUANTITY_UNITS", "SEVERITY_ZONES",
     "SOURCE_KINDS", "UNITS", "WINDOWS",
-    "BandConfig", "BearingConfig", "CaptureConfig", "Config", "ConfigError", "EnvelopeConfig",
+    "BandConfig", "BearingConfig", "CaptureConfig", "Config", "ConfigError", "EnvelopeConfig", "EvidenceConfig",
     "HealthConfig", "MqttConfig", "SimulatorConfig", "SourceConfig", "SpectrumConfig", "SpeedConfig",
-    "check_rate", "load", "parse", "quantity_unit",
+    "check_rate", "load", "load_mqtt", "parse", "quantity_unit",
 ]

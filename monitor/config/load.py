@@ -16,7 +16,7 @@ from typing import Any, Dict, List, Optional, Tuple
 from ..analyse.bearings import DEFECTS, bearing_orders
 from ..analyse.units import iso_velocity_hz
 from ..errors import ConfigError
-from .paths import resolve_paths
+from .paths import resolve_paths, resolve_section
 from .rates import order_edge_problem
 from .schema import (
     FORMATS,
@@ -34,6 +34,7 @@ from .schema import (
     CaptureConfig,
     Config,
     EnvelopeConfig,
+    EvidenceConfig,
     HealthConfig,
     MqttConfig,
     SimulatorConfig,
@@ -406,6 +407,8 @@ def _read_mqtt(t: Table) -> MqttConfig:
         key_file=t.get_str("key_file", ""),
         queue_dir=t.get_str("queue_dir", "/var/lib/bandwatch"),
         queue_limit=t.get_int("queue_limit", 10000, 1, 10_000_000),
+        spectrum_queue_limit=t.get_int("spectrum_queue_limit", 500, 1, 1_000_000),
+        capture_queue_mb=t.get_float("capture_queue_mb", 100.0, lo=0.0, lo_open=True, hi=1_000_000.0),
     )
     if not cfg.host:
         raise t.bad("host", "", "a broker host name or address")
@@ -424,13 +427,29 @@ def _read_mqtt(t: Table) -> MqttConfig:
     return cfg
 
 
-_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "capture", "mqtt")
+def _read_evidence(t: Table, nyquist: float) -> EvidenceConfig:
+    interval = t.get_float("spectrum_interval", 0.0, lo=0.0, hi=604800.0,
+                           expected="0 (none) or seconds from 1 to 604800")
+    if 0.0 < interval < 1.0:
+        raise t.bad("spectrum_interval", interval, "0 (none) or seconds from 1 to 604800")
+    top = None
+    if t.has("spectrum_top_hz"):
+        hi = nyquist if nyquist > 0 else math.inf
+        top = t.get_float("spectrum_top_hz", None, lo=0.0, lo_open=True, hi=hi,
+                          expected=f"a frequency > 0 and <= {hi:g} (Nyquist)")
+    evidence = EvidenceConfig(spectrum_on_rise=t.get_bool("spectrum_on_rise", True),
+                              spectrum_interval=interval, spectrum_top_hz=top)
+    t.finish()
+    return evidence
 
 
-def parse(text: str, file: str = "<config>") -> Config:
-    """Check a config given as TOML text; raise ConfigError on the first fault."""
+_SECTIONS = ("node", "source", "spectrum", "speed", "envelope", "bearing", "band", "health", "capture", "evidence",
+             "mqtt")
+
+
+def _toml(text: str, file: str) -> Dict[str, Any]:
     try:
-        data = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         line = getattr(exc, "lineno", None)
         if line is None:
@@ -438,6 +457,10 @@ def parse(text: str, file: str = "<config>") -> Config:
             line = int(m.group(1)) if m else None
         raise ConfigError(file, "", f"not valid TOML: {exc}", line) from None
 
+
+def parse(text: str, file: str = "<config>") -> Config:
+    """Check a config given as TOML text; raise ConfigError on the first fault."""
+    data = _toml(text, file)
     locator = Locator(text)
     top = Table(data, file, locator, "")
 
@@ -498,6 +521,7 @@ def parse(text: str, file: str = "<config>") -> Config:
 
     health = _read_health(section("health", False))
     capture = _read_capture(section("capture", True)) if "capture" in data else None
+    evidence = _read_evidence(section("evidence", False), source.nyquist)
     mqtt = None
     if "mqtt" in data:
         mqtt = _read_mqtt(section("mqtt", True))
@@ -514,6 +538,7 @@ def parse(text: str, file: str = "<config>") -> Config:
         envelope=envelope,
         bearings=tuple(bearings.values()),
         capture=capture,
+        evidence=evidence,
         summary_interval=mqtt.summary_interval if mqtt else 10.0,
         prefix=mqtt.prefix if mqtt else "bandwatch",
         memory_mb=memory_mb,
@@ -525,16 +550,33 @@ def parse(text: str, file: str = "<config>") -> Config:
     return config
 
 
-def load(path: str) -> Config:
-    """Read and check the config file at `path`; relative paths in it are
-    taken from its folder (`paths.py`)."""
+def _read_text(path: str) -> str:
     try:
         with open(path, "rb") as fh:
             raw = fh.read()
     except OSError as exc:
         raise ConfigError(path, "", f"cannot read the file: {exc.strerror or exc}") from None
     try:
-        text = raw.decode("utf-8")
+        return raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ConfigError(path, "", f"not UTF-8 text (byte {exc.start})") from None
-    return resolve_paths(parse(text, path), os.path.dirname(path))
+
+
+def load(path: str) -> Config:
+    """Read and check the config file at `path`; relative paths in it are
+    taken from its folder (`paths.py`)."""
+    return resolve_paths(parse(_read_text(path), path), os.path.dirname(path))
+
+
+def load_mqtt(path: str) -> MqttConfig:
+    """Only the [mqtt] section of the file at `path`, checked as `load` checks
+    it; other sections are not read, so a node's whole config serves as well
+    as a file holding [mqtt] alone (what `bandwatch collect` needs). Relative
+    paths in it are taken from the file's folder, as `load` takes them."""
+    text = _read_text(path)
+    data = _toml(text, path)
+    locator = Locator(text)
+    if not isinstance(data.get("mqtt"), dict):
+        raise ConfigError(path, "mqtt", "missing; the broker's [mqtt] section is required here",
+                          locator.find("", None, "mqtt"))
+    return resolve_section(_read_mqtt(Table(data["mqtt"], path, locator, "mqtt")), "mqtt", os.path.dirname(path))

@@ -31,6 +31,7 @@ def plan(config: Config, sample_rate: Optional[float] = None) -> List[Part]:
     """The memory of each part of `config`, at `sample_rate` (default: the
     config's; a file source's rate may only be known from the recording)."""
     from ..acquire.sources.stream import QUEUE_MAX_VALUES, QUEUE_SECONDS
+    from ..deliver.mqtt import HANDOFF_BYTES
     from ..deliver.queue import MEMORY_EVENTS
     from ..judge.baseline import MAX_VALUES
 
@@ -59,6 +60,8 @@ def plan(config: Config, sample_rate: Optional[float] = None) -> List[Part]:
         held = min(config.mqtt.queue_limit, MEMORY_EVENTS)
         parts.append(Part("event queue in memory", held * EVENT_BYTES,
                           f"{held} events while the disk refuses writes x {EVENT_BYTES} bytes"))
+        parts.append(Part("spectra and captures in memory", HANDOFF_BYTES,
+                          "waiting for the disk, at most (deliver/mqtt.py)"))
     learning = sum(len(b.channels) for b in config.bands if b.baseline is not None)
     if learning and fs > 0:
         results = max(b.baseline or 0.0 for b in config.bands) * fs / spec.hop

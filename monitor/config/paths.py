@@ -23,16 +23,21 @@ PATH_KEYS = {
 }
 
 
+def resolve_section(table: Any, section: str, folder: str) -> Any:
+    """One section's dataclass with its relative path keys joined to `folder`."""
+    folder = os.path.abspath(folder)
+    joined = {k: os.path.join(folder, getattr(table, k)) for k in PATH_KEYS[section]
+              if getattr(table, k) and not os.path.isabs(getattr(table, k))}
+    return dataclasses.replace(table, **joined) if joined else table
+
+
 def resolve_paths(config: Config, folder: str) -> Config:
     """`config` with every relative path key joined to `folder` (made absolute)."""
-    folder = os.path.abspath(folder)
     changes: Dict[str, Any] = {}
-    for section, keys in PATH_KEYS.items():
+    for section in PATH_KEYS:
         table = getattr(config, section)
-        if table is None:
-            continue
-        joined = {k: os.path.join(folder, getattr(table, k)) for k in keys
-                  if getattr(table, k) and not os.path.isabs(getattr(table, k))}
-        if joined:
-            changes[section] = dataclasses.replace(table, **joined)
+        if table is not None:
+            resolved = resolve_section(table, section, folder)
+            if resolved is not table:
+                changes[section] = resolved
     return dataclasses.replace(config, **changes) if changes else config

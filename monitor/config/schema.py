@@ -174,6 +174,8 @@ class MqttConfig:
     key_file: str = ""
     queue_dir: str = "/var/lib/bandwatch"
     queue_limit: int = 10000
+    spectrum_queue_limit: int = 500  # spectra kept on disk while the broker is away
+    capture_queue_mb: float = 100.0  # captures kept on disk while the broker is away, MB
 
 
 @dataclass(frozen=True)
@@ -184,6 +186,15 @@ class CaptureConfig:
     after: float = 5.0  # written after it
     keep: int = 20  # newest files kept; older ones are deleted
     dir: str = "/var/lib/bandwatch/captures"
+
+
+@dataclass(frozen=True)
+class EvidenceConfig:
+    """Spectra sent for the analyst (monitor.deliver.spectrum_payload)."""
+
+    spectrum_on_rise: bool = True  # with every rise of a band level
+    spectrum_interval: float = 0.0  # stream seconds between spectra; 0: none
+    spectrum_top_hz: Optional[float] = None  # highest line sent; None: Nyquist
 
 
 @dataclass(frozen=True)
@@ -199,6 +210,7 @@ class Config:
     envelope: Optional[EnvelopeConfig] = None
     bearings: Tuple[BearingConfig, ...] = ()
     capture: Optional[CaptureConfig] = None
+    evidence: EvidenceConfig = EvidenceConfig()
     # Used when there is no [mqtt] section: stdout still gets summaries.
     summary_interval: float = 10.0
     prefix: str = "bandwatch"

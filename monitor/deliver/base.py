@@ -11,6 +11,8 @@ TOPICS: Dict[str, Tuple[Optional[int], bool]] = {
     "summary": (0, False),
     "event": (None, False),
     "levels": (1, True),
+    "spectrum": (1, False),
+    "capture": (1, False),
 }
 
 
@@ -33,13 +35,17 @@ class Sink:
     many were lost (to the queue bound or a damaged queue file) since start;
     `held` how many of the waiting ones sit in memory because the disk refused
     them; `last_event_id` the highest event id the backend has stored, now or
-    before (a backend without a queue keeps all of them 0).
+    before; `evidence_queued` and `evidence_dropped` what `queued` and
+    `dropped` are for events, for spectra and captures together (a backend
+    without a queue keeps all of them 0).
     """
 
     queued = 0
     dropped = 0
     held = 0
     last_event_id = 0
+    evidence_queued = 0
+    evidence_dropped = 0
 
     def storage_fault(self) -> bool:
         """True while the backend's disk refuses writes, and once after it

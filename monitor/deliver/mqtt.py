@@ -12,6 +12,13 @@ Topics and their QoS/retain flags are the table in `base.TOPICS`:
 * ``levels``: retained QoS 1, not stored on disk; the latest is kept in
   memory and published again on every reconnect.
 * ``summary``: QoS 0, dropped while disconnected.
+* ``spectrum`` and ``capture``: QoS 1, handed to the delivery thread, which
+  encodes them (a capture: reads its file into the `capture_message`
+  format) and writes them to their own on-disk queues (`evidence_queue`), so
+  neither the encoding nor the disk write ever holds up the measurement.
+  They are published like events, from their queue heads, but only while no
+  event waits: events always go first, and a large capture never sits
+  between the broker and an event still to be sent.
 
 The paho client itself (paho 1.6 and 2.x, client id, password, TLS) is set
 up in `mqtt_client.py`.
@@ -33,7 +40,7 @@ import logging
 import sys
 import threading
 import time
-from typing import Any, Deque, Dict, Optional, Tuple
+from typing import Any, Deque, Dict, List, Optional, Tuple, Union
 
 import paho.mqtt.client as mqtt
 
@@ -41,8 +48,10 @@ from ..config import MqttConfig
 from ..errors import DeliveryError
 from . import exposure
 from .base import TOPICS, Payload, Sink, topic
+from .capture_message import pack
 from .mqtt_client import PAHO2, client_id, connack_text, new_client, rc_value, read_password
-from .payloads import encode
+from .evidence_queue import CAPTURES, SPECTRA, EvidenceQueue, StoreRefused
+from .payloads import Lines, encode
 from .queue import EventQueue, kept
 
 _BEAT_S = 1.0  # the delivery thread wakes at least this often when idle
@@ -50,6 +59,24 @@ log = logging.getLogger("bandwatch.delivery")
 
 CLOSE_TIMEOUT = 3.0  # seconds close() waits for the broker to confirm
 WINDOW = 16  # events in flight at once; paho's own limit is set above this
+SPECTRUM_WINDOW = 4  # spectra in flight at once
+CAPTURE_WINDOW = 1  # captures in flight at once (each may be megabytes)
+# Spectra and captures waiting in memory for the delivery thread to store
+# them (a refusing disk keeps them here): at most this many, and this many
+# bytes of spectrum lines (a choice of this project; see config/memory.py).
+HANDOFF = 1000
+HANDOFF_BYTES = 8 << 20
+Store = Union[EventQueue, EvidenceQueue]
+
+
+def evidence_bytes(payload: Payload) -> int:
+    """What a spectrum or capture notice holds in memory, roughly: a
+    spectrum's numbers, and a little for the rest."""
+    lines = payload.get("channels")
+    held = 0
+    if isinstance(lines, dict):
+        held = sum(v.values.nbytes for v in lines.values() if isinstance(v, Lines))
+    return held + 2048
 
 
 def _guarded(method: Any) -> Any:
@@ -71,7 +98,9 @@ class MqttSink(Sink):
 
     Counters for the pipeline: `queued` (events waiting on disk), `dropped`
     (events lost to the queue bound since start; only grows), `published`
-    (events confirmed by the broker), `summaries_dropped`, and `connected`.
+    (events confirmed by the broker), `summaries_dropped`, and `connected`;
+    for spectra and captures together `evidence_queued`, `evidence_dropped`
+    and `evidence_published`.
     """
 
     def __init__(
@@ -108,10 +137,13 @@ class MqttSink(Sink):
         self._status_due = False
         self._closing: Optional[bytes] = None
         self._close_deadline = 0.0
+        self._handoff: Deque[Tuple[str, str, Payload, int]] = collections.deque()  # ..., bytes
+        self._handoff_bytes = 0
+        self._evidence_refused = False  # the delivery thread's: retry every beat
 
         # Owned by the delivery thread.
         self._online = False
-        self._inflight: Dict[int, int] = {}  # mid -> queue row id
+        self._inflight: Dict[int, Tuple[Store, int]] = {}  # mid -> (queue, row id)
         self._offline_mid: Optional[int] = None
         self._offline_sent = False
         self._closed_done = threading.Event()
@@ -124,6 +156,7 @@ class MqttSink(Sink):
         self._session = False
         self._paho_error = ""
         self.published = 0
+        self.evidence_published = 0
         self.summaries_dropped = 0
         self._lost = 0  # events the queue did not take at all
         self._damage_told = False
@@ -131,16 +164,23 @@ class MqttSink(Sink):
         self._beat = time.monotonic()
 
         self.queue = EventQueue(cfg.queue_dir, cfg.queue_limit)
+        self.spectra: Optional[EvidenceQueue] = None
+        self.captures: Optional[EvidenceQueue] = None
         try:
+            # Beside the event queue, under its directory lock.
+            self.spectra = EvidenceQueue(cfg.queue_dir, SPECTRA, "spectrum", cfg.spectrum_queue_limit)
+            self.captures = EvidenceQueue(cfg.queue_dir, CAPTURES, "capture", 10 ** 9,
+                                          limit_bytes=int(cfg.capture_queue_mb * 1e6))
             self._client = self._make_client(password, reconnect_min, reconnect_max)
         except BaseException:
-            self.queue.close()
+            self._close_queues()
             raise
 
     # -- setup ---------------------------------------------------------------
 
     def _make_client(self, password: Optional[str], reconnect_min: float, reconnect_max: float) -> Any:
-        client = new_client(self.cfg, self.client_id, password, reconnect_min, reconnect_max, self.window + 4)
+        client = new_client(self.cfg, self.client_id, password, reconnect_min, reconnect_max,
+                            self.window + SPECTRUM_WINDOW + CAPTURE_WINDOW + 4)
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
         client.on_publish = self._on_publish
@@ -183,6 +223,23 @@ class MqttSink(Sink):
         return False
 
     @property
+    def evidence_queued(self) -> int:  # type: ignore[override]
+        """Spectra and captures waiting to be stored or confirmed."""
+        assert self.spectra is not None and self.captures is not None
+        return self.spectra.count + self.captures.count + len(self._handoff)
+
+    @property
+    def evidence_dropped(self) -> int:  # type: ignore[override]
+        """Spectra and captures lost to their queues' bounds since start; only grows."""
+        assert self.spectra is not None and self.captures is not None
+        return self.spectra.dropped + self.captures.dropped
+
+    def _store_of(self, suffix: str) -> EvidenceQueue:
+        store = self.spectra if suffix == "spectrum" else self.captures
+        assert store is not None
+        return store
+
+    @property
     def connected(self) -> bool:
         """True while a broker session is up and the online status was sent."""
         return self._online
@@ -222,6 +279,23 @@ class MqttSink(Sink):
             log.warning("MQTT: %s sent after close; dropped", suffix)
             return
         name = self._topic(suffix)  # refuses unknown suffixes
+        if suffix in ("spectrum", "capture"):
+            # Encoded and stored by the delivery thread: the measuring
+            # thread only hands the payload over.
+            size = evidence_bytes(payload)
+            with self._cond:
+                while self._handoff and (len(self._handoff) >= HANDOFF
+                                         or self._handoff_bytes + size > HANDOFF_BYTES):
+                    old = self._handoff.popleft()
+                    self._handoff_bytes -= old[3]
+                    self._store_of(old[0]).count_lost()
+                    log.warning("MQTT: spectra and captures wait for the disk beyond their bound in memory; "
+                                "the oldest %s was dropped", old[0])
+                self._handoff.append((suffix, name, payload, size))
+                self._handoff_bytes += size
+                self._work = True
+                self._cond.notify()
+            return
         data = encode(payload).encode("utf-8")
         if suffix == "event":
             try:
@@ -258,7 +332,7 @@ class MqttSink(Sink):
             return
         self._closed = True
         if not self._opened:
-            self.queue.close()
+            self._close_queues()
             return
         with self._cond:
             self._closing = encode(offline).encode("utf-8")
@@ -276,11 +350,22 @@ class MqttSink(Sink):
         finally:
             self._client.loop_stop()
         self._online = False
-        left = self.queue.count
-        if left:
-            log.info("MQTT: %d event(s) stay queued in %s for the next start", left, self.queue.path)
-        self.queue.close()
+        if not self._store_evidence():  # what the delivery thread had no time to store
+            with self._cond:
+                left, self._handoff = list(self._handoff), collections.deque()
+            for item in left:
+                self._store_of(item[0]).count_lost()
+            log.error("MQTT: %d spectra and captures the disk refused are lost at shutdown", len(left))
+        for what, store in (("event", self.queue), ("spectrum", self.spectra), ("capture", self.captures)):
+            if store is not None and store.count:
+                log.info("MQTT: %d %s(s) stay queued in %s for the next start", store.count, what, store.path)
+        self._close_queues()
         log.info("MQTT: closed")
+
+    def _close_queues(self) -> None:
+        for store in (self.spectra, self.captures, self.queue):
+            if store is not None:
+                store.close()
 
     # -- paho callbacks (network thread) ---------------------------------------
 
@@ -364,7 +449,8 @@ class MqttSink(Sink):
                     if self._closing is not None:
                         timeout = max(0.0, self._close_deadline - time.monotonic()) + 0.05
                     # A refusing disk is retried every beat.
-                    if not self._cond.wait(timeout) and (self._closing is not None or self.queue.error):
+                    if not self._cond.wait(timeout) and (self._closing is not None or self.queue.error
+                                                         or self._evidence_refused):
                         break
                 if self._stop:
                     return
@@ -377,16 +463,46 @@ class MqttSink(Sink):
                 self._levels_due = self._status_due = False
                 closing = self._closing
             try:
+                self._store_evidence()
                 self._step(notes, levels, status, closing)
             except Exception:  # noqa: BLE001 - keep delivering; the queue keeps the events
                 log.exception("MQTT: delivery step failed")
                 time.sleep(0.5)
 
+    def _store_evidence(self) -> bool:
+        """Encode spectra and pack captures, and write them to their queues,
+        oldest first; True when none is left. A disk that refuses a write
+        leaves it (and those after it) waiting in memory for the next try."""
+        while True:
+            with self._cond:
+                if not self._handoff:
+                    self._evidence_refused = False
+                    return True
+                item = self._handoff[0]
+            suffix, name, payload, size = item
+            store = self._store_of(suffix)
+            try:
+                data = encode(payload).encode("utf-8") if suffix == "spectrum" else pack(payload)
+                store.put(name, data, TOPICS[suffix][0] or 0)
+            except StoreRefused:
+                self._evidence_refused = True
+                return False
+            except OSError as err:  # the capture file went away before it was read
+                log.error("MQTT: capture %s cannot be read: %s", payload.get("path"), err.strerror or err)
+                store.count_lost()
+            except Exception as err:  # noqa: BLE001 - keep delivering; counted, and the check says so
+                log.error("MQTT: %s could not be stored in %s: %s", suffix, store.path, err)
+                store.count_lost()
+            with self._cond:
+                if self._handoff and self._handoff[0] is item:  # not dropped meanwhile
+                    self._handoff.popleft()
+                    self._handoff_bytes -= size
+
     def _step(
         self, notes: Any, levels: Optional[bytes], status: Optional[bytes], closing: Optional[bytes]
     ) -> None:
         self.queue.retry()
-        confirmed = []
+        confirmed: Dict[Store, List[int]] = {}
         online = self._online
         for what, mid in notes:
             if what == "connect":
@@ -402,12 +518,15 @@ class MqttSink(Sink):
             elif what == "published":
                 row = self._inflight.pop(mid, None)
                 if row is not None:
-                    confirmed.append(row)
+                    confirmed.setdefault(row[0], []).append(row[1])
                 elif mid == self._offline_mid and self._offline_mid is not None:
                     self._closed_done.set()
-        if confirmed:
-            self.queue.remove_many(confirmed)
-            self.published += len(confirmed)
+        for store, rows in confirmed.items():
+            removed = store.remove_many(rows)
+            if store is self.queue:
+                self.published += removed
+            else:
+                self.evidence_published += removed
         # Offline, these wait for the next connect, which sends the latest.
         if online and status is not None and closing is None:
             self._client.publish(self._topic("status"), status, qos=1, retain=True)
@@ -421,23 +540,35 @@ class MqttSink(Sink):
             self._finish(closing)
 
     def _fill(self) -> None:
-        """Publish from the queue head until `window` events are in flight."""
+        """Publish from the queue heads: events until `window` are in flight;
+        spectra and captures only while no event waits."""
         if not self._online:
             return
-        room = self.window - len(self._inflight)
-        if room <= 0:
+        if not self._fill_from(self.queue, self.window):
             return
-        busy = set(self._inflight.values())
-        for row in self.queue.peek(self.window):
+        if self.queue.count == 0:
+            assert self.spectra is not None and self.captures is not None
+            if self._fill_from(self.spectra, SPECTRUM_WINDOW):
+                self._fill_from(self.captures, CAPTURE_WINDOW)
+
+    def _fill_from(self, store: Store, window: int) -> bool:
+        """Publish from `store` until `window` of its rows are in flight;
+        False when the client refused a publish (not connected after all)."""
+        busy = {row for queue, row in self._inflight.values() if queue is store}
+        room = window - len(busy)
+        if room <= 0 or not store.count:
+            return True
+        for row in store.peek(window):
             if room <= 0:
                 break
             if row.id in busy:
                 continue
             info = self._client.publish(row.topic, row.payload, qos=row.qos, retain=False)
             if info.rc != mqtt.MQTT_ERR_SUCCESS:
-                break  # not connected after all; the reconnect re-sends
-            self._inflight[info.mid] = row.id
+                return False  # the reconnect re-sends
+            self._inflight[info.mid] = (store, row.id)
             room -= 1
+        return True
 
     def _finish(self, offline: bytes) -> None:
         """Closing: drain what the broker will take in time, then say offline."""
@@ -445,7 +576,7 @@ class MqttSink(Sink):
             self._closed_done.set()  # the will already turned status offline
             return
         late = time.monotonic() >= self._close_deadline
-        if not late and (self.queue.count or self._inflight):
+        if not late and (self.queue.count or self.evidence_queued or self._inflight):
             self._fill()
             return
         if not self._offline_sent:

@@ -149,13 +149,15 @@ def connack_text(rc: Any) -> str:
 
 
 def new_client(cfg: MqttConfig, client_id: str, password: Optional[str], reconnect_min: float,
-               reconnect_max: float, max_inflight: int) -> Any:
-    """A paho client for `cfg`, not yet connected and without callbacks."""
+               reconnect_max: float, max_inflight: int, clean_session: bool = True) -> Any:
+    """A paho client for `cfg`, not yet connected and without callbacks.
+    `clean_session=False` asks the broker to keep the session while the
+    client is away (the collector's)."""
     if PAHO2:
-        client = _Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=True,
+        client = _Client(mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=clean_session,
                          protocol=mqtt.MQTTv311)
     else:
-        client = _Client(client_id=client_id, clean_session=True, protocol=mqtt.MQTTv311)
+        client = _Client(client_id=client_id, clean_session=clean_session, protocol=mqtt.MQTTv311)
     if cfg.username:
         client.username_pw_set(cfg.username, password)
     if cfg.tls:

@@ -225,19 +225,8 @@ class EventQueue:
             self._lock_fd = None
 
     def _connect(self, path: str) -> sqlite3.Connection:
-        # isolation_level=None: transactions are explicit, so nothing is left
-        # half-committed by Python's implicit BEGIN.
-        db = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+        db = durable_connection(path)
         try:
-            mode = db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
-            if str(mode).lower() != "wal":
-                raise sqlite3.OperationalError(f"journal_mode is {mode}, WAL refused")
-            db.execute("PRAGMA synchronous=FULL")
-            # A short write-ahead log: checkpointed every WAL_PAGES pages and
-            # cut back after, so it reuses its own space rather than growing
-            # to SQLite's default 4 MB, which alone can fill a small partition.
-            db.execute(f"PRAGMA wal_autocheckpoint={WAL_PAGES}")
-            db.execute(f"PRAGMA journal_size_limit={WAL_PAGES * 4096 * 2}")
             for statement in _SCHEMA:
                 db.execute(statement)
             check = db.execute("PRAGMA quick_check").fetchone()[0]
@@ -306,7 +295,7 @@ class EventQueue:
             db.execute("INSERT OR REPLACE INTO meta (key, value) VALUES ('last_event_id', ?)", (last_event_id,))
             db.execute("COMMIT")
         except BaseException:
-            _roll_back(db)
+            roll_back(db)
             db.close()
             raise
         self.damage = Damage(aside, str(err), held, len(rows))
@@ -409,7 +398,7 @@ class EventQueue:
             _count_lost(db, dropped)
             db.execute("COMMIT")
         except BaseException:
-            _roll_back(db)
+            roll_back(db)
             raise
         self._unremoved.clear()
         self._count += len(rows) - removed - dropped
@@ -533,7 +522,7 @@ class EventQueue:
                     db.execute("UPDATE meta SET value = 0 WHERE key = 'lost'")
                 db.execute("COMMIT")
             except BaseException:
-                _roll_back(db)
+                roll_back(db)
                 raise
             return removed
 
@@ -603,6 +592,38 @@ class EventQueue:
         self.close()
 
 
+def durable_connection(path: str) -> sqlite3.Connection:
+    """A connection to the SQLite file at `path` that syncs every commit to
+    disk (WAL, synchronous=FULL) and keeps its write-ahead log short."""
+    # isolation_level=None: transactions are explicit, so nothing is left
+    # half-committed by Python's implicit BEGIN.
+    db = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+    try:
+        mode = db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+        if str(mode).lower() != "wal":
+            raise sqlite3.OperationalError(f"journal_mode is {mode}, WAL refused")
+        db.execute("PRAGMA synchronous=FULL")
+        # A short write-ahead log: checkpointed every WAL_PAGES pages and
+        # cut back after, so it reuses its own space rather than growing
+        # to SQLite's default 4 MB, which alone can fill a small partition.
+        db.execute(f"PRAGMA wal_autocheckpoint={WAL_PAGES}")
+        db.execute(f"PRAGMA journal_size_limit={WAL_PAGES * 4096 * 2}")
+    except BaseException:
+        db.close()
+        raise
+    return db
+
+
+def roll_back(db: sqlite3.Connection) -> None:
+    """Roll back an open transaction. A full disk can end the transaction
+    itself, and the error raised must be the true one, not "no transaction"."""
+    if db.in_transaction:
+        try:
+            db.execute("ROLLBACK")
+        except sqlite3.Error:
+            pass
+
+
 def _meta(db: sqlite3.Connection, key: str) -> int:
     row = db.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
     return int(row[0]) if row else 0
@@ -614,16 +635,6 @@ def _count_lost(db: sqlite3.Connection, n: int) -> None:
     if n > 0:
         db.execute("INSERT OR IGNORE INTO meta (key, value) VALUES ('lost', 0)")
         db.execute("UPDATE meta SET value = value + ? WHERE key = 'lost'", (n,))
-
-
-def _roll_back(db: sqlite3.Connection) -> None:
-    """Roll back an open transaction. A full disk can end the transaction
-    itself, and the error raised must be the true one, not "no transaction"."""
-    if db.in_transaction:
-        try:
-            db.execute("ROLLBACK")
-        except sqlite3.Error:
-            pass
 
 
 class _Salvage(NamedTuple):

@@ -21,7 +21,7 @@ import logging
 import os
 import re
 from dataclasses import dataclass, field
-from typing import Any, Dict, List, Optional, Sequence
+from typing import Any, Callable, Dict, List, Optional, Sequence
 
 import numpy as np
 
@@ -57,6 +57,8 @@ class Capture:
         self._end = 0  # stream index one past the newest sample in the ring
         self._pending: Optional[_Pending] = None
         self.written: List[str] = []
+        # Told (path, the file's capture metadata) after each file is written.
+        self.on_write: Optional[Callable[[str, Dict[str, Any]], None]] = None
 
     def feed(self, samples: np.ndarray, end_index: int) -> None:
         """Samples shaped (channels, n) in the unit, ending just before `end_index`."""
@@ -126,6 +128,8 @@ class Capture:
                  (pending.trigger - first) / self.fs, f"; cut short by {cut}" if cut else "")
         self.written.append(path)
         self._prune()
+        if self.on_write is not None:
+            self.on_write(path, {**extra["capture"], "seconds": round(n / self.fs, 6)})
 
     def _prune(self) -> None:
         try:

@@ -22,6 +22,7 @@ from ..analyse.units import quantity_unit
 from ..config import Config
 from ..errors import ConfigError
 from ..deliver.base import Sink
+from ..deliver.capture_message import capture_notice
 from ..analyse.envelope import EnvelopeStage
 from ..judge.health import Change, Health
 from .notify import Notifier
@@ -31,6 +32,7 @@ from ..judge.levels import BAND_LEVELS, LevelMachine
 from ..acquire.block import Block
 from ..acquire.sources.base import Source
 from ..deliver.event_ids import EventIds
+from ..deliver.spectrum_payload import SpectrumSchedule, spectrum_payload
 from ..analyse.spectrum import SpectralStage, Spectrum
 from ..analyse.speed import SpeedTracker
 from ..analyse.stats import time_stats
@@ -94,10 +96,13 @@ class Monitor:
         self.capture: Optional[Capture] = None
         if cfg.capture is not None:
             self.capture = Capture(cfg.capture, cfg.node, cfg.source.channels, cfg.source.unit, self.fs)
+            self.capture.on_write = self._capture_written
         self._build_stages()
         self._build_rules(None)
         self._samples = 0  # stream position, lost samples included
         self._next_summary = 0.0
+        self._spectra = SpectrumSchedule()
+        self._rises: List[Payload] = []  # band events that rose at this result
         self._last_sample_at = self.clock()
         self._stream_s = 0.0
         self._counts_noted = False  # whether integer samples were seen (and a missing scale warned of)
@@ -358,6 +363,7 @@ class Monitor:
         self.results += 1
         if self.results == 1:
             self.notifier.ready(self.status_line(result))
+        self._rises = []
         changed = self._apply_rules(result)
         changed |= self._emit_health(self.health.on_spectrum(spectrum, stream_s), result)
         changed |= self._emit_health(self._on_delivery(stream_s), result)
@@ -368,12 +374,20 @@ class Monitor:
             self.notifier.status(self.status_line(result))
             interval = self.config.summary_interval
             self._next_summary = (math.floor(stream_s / interval) + 1) * interval
+        rises = self._spectra.take(self.config.evidence, stream_s, self._rises)
+        if rises is not None:
+            rows = self.reporter.band_rows(result.bands, self.band_rules, self.baselines)
+            self.sink.send("spectrum", spectrum_payload(self.node, self.config, result, rows, rises))
         for observe in self._observers:
             observe(result)
 
+    def _capture_written(self, path: str, meta: Payload) -> None:
+        self.sink.send("capture", capture_notice(self.node, self._stream_s, path, meta))
+
     def _on_delivery(self, t: float) -> List[Change]:
-        sink = self.sink
-        return self.health.on_delivery(sink.dropped, sink.queued, t, sink.held, sink.storage_fault())
+        sink = self.sink  # events, spectra and captures: one `queue` check for all that can be lost
+        return self.health.on_delivery(sink.dropped + sink.evidence_dropped, sink.queued + sink.evidence_queued, t,
+                                       sink.held, sink.storage_fault())
 
     def _measure(self, spectrum: Spectrum, envelope: Optional[Spectrum], stream_s: float) -> Result:
         # The spectrum describes its samples as a whole: the speed read from
@@ -410,10 +424,13 @@ class Monitor:
             changed = True
             event = self.reporter.band_event(value, change, base, result.stream_s, result.speed_hz,
                                              result.dominant_hz)
-            if self.capture is not None and BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0]):
+            rose = BAND_LEVELS.index(change[1]) > BAND_LEVELS.index(change[0])
+            if self.capture is not None and rose:
                 # Raw samples around the rise, named now, written `after` s later.
                 event["capture"] = self.capture.trigger(self._samples, event)
             self.sink.send("event", event)
+            if rose:
+                self._rises.append(event)
             log.info("%s/%s %s -> %s at %.3g %s", value.name, value.channel, change[0], change[1],
                      value.value, value.unit)
         return changed

@@ -105,9 +105,14 @@ class Reporter:
         payload["speed_hz"] = num(result.speed_hz)
         payload["speed_s"] = None if result.speed_s is None else round(result.speed_s, 6)
         payload["channels"] = channels
-        payload["bands"] = [
+        payload["bands"] = self.band_rows(result.bands, rules, baselines)
+        return payload
+
+    @staticmethod
+    def band_rows(bands: List[BandValue], rules: List[LevelMachine], baselines: List[Baseline]) -> List[Payload]:
+        """The bands as summaries and spectra list them."""
+        return [
             {"name": v.name, "channel": v.channel, "value": num(v.value), "unit": v.unit, "level": rule.level,
              "limits": limits(base)}
-            for v, rule, base in zip(result.bands, rules, baselines)
+            for v, rule, base in zip(bands, rules, baselines)
         ]
-        return payload

@@ -7,6 +7,7 @@ import numpy as np
 from monitor.acquire.decoders.frame import encode_frame
 from monitor.acquire.sources.memory import BytesSource
 from monitor.config import SourceConfig
+from sockets import wait_until
 
 RATE = 1000.0
 
@@ -48,3 +49,41 @@ def test_a_sequence_gap_starts_a_block_with_the_loss():
     blocks = read_all(BytesSource(config(), [stream]))
     assert [b.lost for b in blocks] == [0, 100]
     assert np.array_equal(blocks[1].samples, 3 * one)
+
+
+def test_queued_blocks_are_read_as_batches_split_at_gaps_and_timestamp_changes():
+    # Each frame its own read, all queued before the first `read`: the frames
+    # that follow on without a break come out as one block (bandwatch's
+    # choice, README "Sources", up to 0.25 s: 250 samples here); frame 3 is
+    # missing (the sequence rule: its 50 samples lost), and from frame 6 on
+    # the frames carry timestamps.
+    one = np.ones((50, 2), dtype=np.int16)
+    frames = [encode_frame(k * one, seq=k) for k in (0, 1, 2, 4, 5)]
+    frames += [encode_frame(k * one, seq=k, timestamp_us=1_000_000 + (k - 6) * 50_000) for k in (6, 7)]
+    source = BytesSource(config(), frames)
+    source.open()
+    try:
+        assert wait_until(lambda: source.queued == 350, 5.0)
+        blocks = [source.read(1.0) for _ in range(3)]
+    finally:
+        source.close()
+    assert [b.samples.shape[0] for b in blocks] == [150, 100, 100]
+    assert [b.lost for b in blocks] == [0, 50, 0]
+    assert [b.timestamp_us for b in blocks] == [None, None, 1_000_000]  # the batch's first frame's
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]),
+                          np.concatenate([k * one for k in (0, 1, 2, 4, 5, 6, 7)]))
+
+
+def test_a_batch_holds_at_most_a_quarter_second():
+    # Six gap-free frames of 100 samples at 1 kS/s, all queued: batches stop
+    # before they pass 250 samples (0.25 s, bandwatch's choice, README "Sources").
+    one = np.ones((100, 2), dtype=np.int16)
+    source = BytesSource(config(), [encode_frame(k * one, seq=k) for k in range(6)])
+    source.open()
+    try:
+        assert wait_until(lambda: source.queued == 600, 5.0)
+        blocks = [source.read(1.0) for _ in range(3)]
+    finally:
+        source.close()
+    assert [b.samples.shape[0] for b in blocks] == [200, 200, 200]
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]), np.concatenate([k * one for k in range(6)]))

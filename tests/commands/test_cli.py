@@ -255,7 +255,8 @@ def _of(run, suffix):
 
 def test_run_topics(run_60s):
     suffixes = {_suffix(t) for t, _ in run_60s}
-    assert suffixes == {"status", "summary", "event", "levels"}
+    # The demo's bands rise, and each rise sends its spectrum (README, What is published).
+    assert suffixes == {"status", "summary", "event", "levels", "spectrum"}
 
 
 def test_run_starts_online_and_ends_offline(run_60s):
@@ -502,6 +503,11 @@ def test_console_script_version():
                             text=True, timeout=30)
     assert result.returncode == 0
     assert result.stdout.strip() == f"bandwatch {__version__}"
+
+
+def test_check_says_when_spectra_are_sent(check_output):
+    # config/demo.toml: spectra with each rise, lines up to 250 Hz.
+    assert "spectra: with each band rise, lines up to 250 Hz" in check_output.splitlines()
 
 
 # ---------------------------------------------------------------------------

@@ -226,6 +226,35 @@ def test_mqtt_defaults(tmp_path):
     assert (config.summary_interval, config.prefix) == (10.0, "bandwatch")
 
 
+def test_evidence_and_its_queue_bounds_default_and_are_taken(tmp_path):
+    config = load_text(tmp_path, MINIMAL + "\n[mqtt]\n")
+    e, m = config.evidence, config.mqtt
+    assert (e.spectrum_on_rise, e.spectrum_interval, e.spectrum_top_hz) == (True, 0.0, None)
+    assert (m.spectrum_queue_limit, m.capture_queue_mb) == (500, 100.0)
+    config = load_text(tmp_path, MINIMAL + "\n[evidence]\nspectrum_on_rise = false\nspectrum_interval = 3600\n"
+                       "spectrum_top_hz = 1000\n[mqtt]\nspectrum_queue_limit = 50\ncapture_queue_mb = 2.5\n")
+    e, m = config.evidence, config.mqtt
+    assert (e.spectrum_on_rise, e.spectrum_interval, e.spectrum_top_hz) == (False, 3600.0, 1000.0)
+    assert (m.spectrum_queue_limit, m.capture_queue_mb) == (50, 2.5)
+
+
+def test_load_mqtt_reads_only_that_section(tmp_path):
+    from monitor.config import load_mqtt
+
+    path = tmp_path / "analyst.toml"
+    path.write_text('[mqtt]\nhost = "broker.plant"\nprefix = "plant"\n')
+    cfg = load_mqtt(str(path))
+    assert (cfg.host, cfg.prefix) == ("broker.plant", "plant")
+    path.write_text('[node]\nname = "x"\n')
+    with pytest.raises(ConfigError) as err:
+        load_mqtt(str(path))
+    assert "mqtt" in str(err.value) and "missing" in str(err.value)
+    path.write_text('[mqtt]\nqos = 7\n')
+    with pytest.raises(ConfigError) as err:
+        load_mqtt(str(path))
+    assert "mqtt.qos" in str(err.value) and "got 7" in str(err.value)
+
+
 def test_mqtt_values_are_taken(tmp_path):
     config = load_text(tmp_path, base(('qos = 1', 'qos = 2'), ('prefix = "bandwatch"', 'prefix = "plant/hall-3"'),
                                       ('summary_interval = 10.0', 'summary_interval = 5.0')))
@@ -572,6 +601,26 @@ MORE_CASES = {
                                    "baseline = 600.0", ["needs warning_ratio or alarm_ratio"]),
     "mqtt-cert-without-tls": Case(demo() + '\n[mqtt]\ncert_file = "/etc/bandwatch/client.pem"\n',
                                   "mqtt.cert_file", "cert_file", ["client.pem", "tls = false"]),
+    "evidence-interval-below-one": Case(demo(("spectrum_top_hz = 250.0", "spectrum_interval = 0.5")),
+                                        "evidence.spectrum_interval", "spectrum_interval",
+                                        ["0.5", "0 (none) or seconds from 1"]),
+    "evidence-interval-negative": Case(demo(("spectrum_top_hz = 250.0", "spectrum_interval = -10")),
+                                       "evidence.spectrum_interval", "spectrum_interval",
+                                       ["-10", "0 (none) or seconds from 1"]),
+    "evidence-top-above-nyquist": Case(demo(("spectrum_top_hz = 250.0", "spectrum_top_hz = 3000.0")),
+                                       "evidence.spectrum_top_hz", "spectrum_top_hz", ["3000.0", "<= 2560 (Nyquist)"]),
+    "evidence-top-zero": Case(demo(("spectrum_top_hz = 250.0", "spectrum_top_hz = 0")),
+                              "evidence.spectrum_top_hz", "spectrum_top_hz", ["got 0", "a frequency > 0"]),
+    "evidence-on-rise-string": Case(demo(("spectrum_top_hz = 250.0", 'spectrum_on_rise = "yes"')),
+                                    "evidence.spectrum_on_rise", "spectrum_on_rise", ["'yes'", "true or false"]),
+    "evidence-unknown-key": Case(demo(("spectrum_top_hz = 250.0", "capture_queue_mb = 10")),
+                                 "evidence.capture_queue_mb", "capture_queue_mb",
+                                 ["unknown key", "spectrum_interval"]),
+    "mqtt-spectrum-queue-limit-0": Case(base(("queue_limit = 10000", "queue_limit = 10000\nspectrum_queue_limit = 0")),
+                                        "mqtt.spectrum_queue_limit", "spectrum_queue_limit",
+                                        ["got 0", "an integer from 1"]),
+    "mqtt-capture-queue-mb-0": Case(base(("queue_limit = 10000", "queue_limit = 10000\ncapture_queue_mb = 0")),
+                                    "mqtt.capture_queue_mb", "capture_queue_mb", ["got 0", "> 0"]),
 }
 CASES.update(MORE_CASES)
 
@@ -615,7 +664,7 @@ def _params():
 # Every section of the README's config reference, with a valid body for the
 # sections the demo leaves out.
 SECTION_BODIES = {
-    "node": None, "source": None, "spectrum": None, "speed": None, "band": None, "health": None,
+    "node": None, "source": None, "spectrum": None, "speed": None, "band": None, "health": None, "evidence": None,
     "envelope": "[envelope]\nband_hz = [1000.0, 2000.0]\n",
     "bearing": "[[bearing]]\nname = \"de\"\nelements = 9\nelement_diameter = 7.94\npitch_diameter = 39.04\n",
     "capture": "[capture]\nkeep = 3\n",

@@ -99,3 +99,15 @@ def test_run_from_another_folder_reads_the_recording_and_writes_captures_beside_
     # The event names the capture file; it lies in the config's folder.
     assert [p.name for p in (folder / "captures").iterdir()] == [raised[0]["capture"]]
     assert list(elsewhere.iterdir()) == []  # nothing written where the command was typed
+
+
+def test_the_mqtt_section_alone_resolves_the_same_way(tmp_path):
+    # `bandwatch collect` reads only [mqtt] (README, Evidence for the analyst).
+    from monitor.config.load import load_mqtt
+
+    folder = tmp_path / "analyst"
+    folder.mkdir()
+    (folder / "analyst.toml").write_text(MQTT, encoding="utf-8")
+    m = load_mqtt(str(folder / "analyst.toml"))
+    assert (m.password_file, m.ca_file, m.key_file) == (
+        str(folder / "secret" / "password"), str(folder / "tls" / "ca.pem"), "/etc/ssl/node.key")

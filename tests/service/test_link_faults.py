@@ -232,7 +232,10 @@ def test_a_corrupt_share_hovering_at_its_limit_gives_one_fault_and_one_clear():
     corrupt = health_changes(sink, "corrupt")
     print(f"corrupt share at its limit: {toggles} changes without hysteresis and hold, "
           f"{len(corrupt)} with the defaults: {corrupt}; last broken frame at {last_broken_s:.2f} s")
-    assert toggles >= 6
+    # At least two faults and two clears: a storm, where the defaults give one
+    # of each. (How many exactly depends on when the reader's counters are
+    # read, which batching and machine load move.)
+    assert toggles >= 4
     assert [level for _, level in corrupt] == ["fault", "normal"]
     # The clear comes after the corruption stopped, and no later than the
     # window (10 s) plus the hold (10 s) after it (README, [health]).

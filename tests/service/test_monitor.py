@@ -11,19 +11,10 @@ from monitor.deliver.payloads import encode
 from monitor.service.monitor import Monitor
 from monitor.acquire.block import Block
 from monitor.acquire.sources.base import Source
-from monitor.acquire.sources.memory import ArraySource
-from rig import BASE, FS, ListSink
+from rig import BASE, FS, ListSink, run
 
 def make(bands="", extra=""):
     return parse(BASE + extra + bands, "test.toml")
-
-
-def run(config, samples, **kw):
-    sink = ListSink()
-    monitor = Monitor(config, ArraySource(config.source, samples, **kw), sink)
-    monitor.source.open()
-    monitor.run()
-    return monitor, sink
 
 
 def tones(n, spec, noise=0.01, seed=0):

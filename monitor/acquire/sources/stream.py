@@ -5,7 +5,12 @@ udp) shares this machinery:
 
 * A dedicated reader thread reads large chunks, feeds them to the decoder for
   `[source] format` and hands complete Blocks to the measuring thread through
-  a bounded queue. `read(timeout)` only ever waits on that queue.
+  a bounded queue. `read(timeout)` only ever waits on that queue, and takes
+  at once the queued blocks that continue the first without a break (up to
+  0.25 s of samples), as one Block: the per-block work (wake-up, health,
+  ring writes) is done per batch, not per frame. TCP readers wait
+  COALESCE_S after a read that emptied the socket, so each read takes many
+  frames.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
   wide streams). When it is full, a link that can push back (TCP) stops
@@ -68,6 +73,9 @@ QUEUE_SECONDS = 2.0
 # Upper bound on queued values (samples x channels): 32 MiB of float64, so a
 # fast, wide stream cannot take the memory of a small board.
 QUEUE_MAX_VALUES = 1 << 22
+# A batch joins at most this share of the queue (0.25 s of samples): enough
+# to wake once per several frames, and its copy stays small.
+BATCH_SHARE = 8
 BACKOFF_START_S = 0.1
 BACKOFF_MAX_S = 3.0
 # Longest any blocking call in a reader thread waits before it looks at the
@@ -78,6 +86,14 @@ READ_MAX = 65536
 # How far a sequence jump may carry stream time ahead of the wall clock
 # before it counts as a restart of the sender.
 JUMP_SLACK_S = 2.0
+
+# After a read that emptied a TCP socket, the reader lets this long of bytes
+# gather in the kernel's buffer before it reads again: one read, decode and
+# hand-off per 0.2 s (about one per result at common settings) instead of one
+# per frame, for at most this much more delay. A read that fills READ_MAX
+# reads again at once. (Serial and UDP read at once: a tty's buffer is
+# small, and each datagram is its own read.)
+COALESCE_S = 0.2
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
@@ -116,6 +132,7 @@ class StreamSource(Source):
     for room in the queue instead of dropping the oldest block."""
 
     pushes_back = False
+    coalesce_s = 0.0  # wait after a short read (COALESCE_S for TCP)
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -123,6 +140,7 @@ class StreamSource(Source):
         self._link: Dict[str, int] = dict.fromkeys(LINK_COUNTERS, 0)
         limit = int(round(QUEUE_SECONDS * config.sample_rate))
         self.queue_limit = max(1, min(limit, QUEUE_MAX_VALUES // max(1, self.channels)))
+        self.batch_limit = max(1, self.queue_limit // BATCH_SHARE)
         self._queue: Deque[Block] = collections.deque()
         self._queued = 0  # samples per channel now in the queue
         self._dropped = 0  # samples dropped just before the queue's head
@@ -197,8 +215,7 @@ class StreamSource(Source):
                 if left <= 0:
                     return None
                 self._ready.wait(left)
-            block = self._queue.popleft()
-            self._queued -= block.samples.shape[0]
+            block = self._take()
             if self.pushes_back:
                 self._ready.notify_all()  # room for a reader that waits
             if self._dropped:
@@ -206,6 +223,34 @@ class StreamSource(Source):
                 block = block._replace(lost=block.lost + self._dropped)
                 self._dropped = 0
         return block
+
+    def _take(self) -> Block:
+        """The queue's head joined with the blocks behind it that continue it
+        without a break (under the lock): the measuring thread then wakes,
+        checks health and writes the ring once per batch, not once per frame.
+        A block with `lost` starts a new batch, and so does one of another
+        full scale or whose timestamps come or go, so the batch's first
+        timestamp and full scale hold for all of it. Only integer samples
+        are joined: a NaN or infinity in float samples drops its block whole
+        (Source.read), and a batch would widen that drop."""
+        queue = self._queue
+        head = queue.popleft()
+        parts = [head.samples]
+        n = head.samples.shape[0]
+        if head.full_scale is not None:
+            stamped = head.timestamp_us is not None
+            while queue:
+                nxt = queue[0]
+                if nxt.lost or nxt.full_scale != head.full_scale or (nxt.timestamp_us is not None) != stamped:
+                    break
+                if n + nxt.samples.shape[0] > self.batch_limit:
+                    break  # the copy a batch makes stays small
+                parts.append(queue.popleft().samples)
+                n += nxt.samples.shape[0]
+        self._queued -= n
+        if len(parts) > 1:
+            head = head._replace(samples=np.concatenate(parts))
+        return head
 
     # ------------------------------------------------------- kind hooks
 
@@ -240,6 +285,8 @@ class StreamSource(Source):
             wall = (time.monotonic() - self._last_arrival) * self.sample_rate
             self._decoder.max_gap = int(self._room + wall + JUMP_SLACK_S * self.sample_rate)
         self._emit_decoded(self._decoder.feed(data, whole))
+        if self.coalesce_s and len(data) < READ_MAX:
+            self._stop.wait(self.coalesce_s)
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""

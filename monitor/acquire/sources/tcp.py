@@ -26,7 +26,7 @@ from typing import Any, Optional, Tuple
 
 from ...config import SourceConfig
 from ...errors import SourceError
-from .stream import POLL_S, READ_MAX, LinkSource, StreamSource, bind, endpoint
+from .stream import COALESCE_S, POLL_S, READ_MAX, LinkSource, StreamSource, bind, endpoint
 
 log = logging.getLogger("bandwatch.sources")
 
@@ -51,6 +51,7 @@ def keepalive(sock: socket.socket) -> None:
 class TcpClientSource(LinkSource):
     kind = "tcp-client"
     pushes_back = True
+    coalesce_s = COALESCE_S
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
@@ -132,6 +133,7 @@ class TcpClientSource(LinkSource):
 class TcpServerSource(StreamSource):
     kind = "tcp-server"
     pushes_back = True
+    coalesce_s = COALESCE_S
 
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
