@@ -40,6 +40,7 @@ Reported:
 """
 
 import argparse
+import compileall
 import math
 import os
 import re
@@ -71,6 +72,22 @@ START_TIMEOUT_S = 60.0  # for the monitor to listen and to give its first result
 
 
 # ------------------------------------------------------------------ config
+
+UNIT = os.path.join(ROOT, "deploy", "bandwatch.service")
+
+
+def unit_environment(path: str) -> Dict[str, str]:
+    """The `Environment=NAME=value` settings of a systemd unit file (one
+    assignment per line, unquoted, as the shipped unit writes them)."""
+    env: Dict[str, str] = {}
+    with open(path) as f:
+        for line in f:
+            line = line.strip()
+            if line.startswith("Environment="):
+                name, _, value = line[len("Environment="):].partition("=")
+                env[name] = value
+    return env
+
 
 def _rewrite(text: str, source_port: int, mqtt_port: Optional[int], queue_dir: str) -> str:
     """The config text with this run's ports and queue directory; without a
@@ -291,7 +308,12 @@ def measure(args: argparse.Namespace, workdir: str) -> int:
         subscriber = Subscriber(mqtt_port, f"{config.mqtt.prefix}/{config.node}/#")
     notify = Notifications(os.path.join(workdir, "notify"))
     log_path = os.path.join(workdir, "monitor.log")
-    env = dict(os.environ, NOTIFY_SOCKET=notify.path, PYTHONPATH=ROOT)
+    # The environment the shipped systemd unit gives the service.
+    env = dict(os.environ, **unit_environment(UNIT), NOTIFY_SOCKET=notify.path, PYTHONPATH=ROOT)
+    # As installed: pip (and a distribution's package) compiles the bytecode
+    # at install time, so a service never compiles its sources at start;
+    # compiling them in the measured process would cost it about 2 MB.
+    compileall.compile_dir(os.path.join(ROOT, "monitor"), quiet=1)
     env.pop("WATCHDOG_USEC", None)
     sender = Sender(src.port, loop_counts(config), src.sample_rate)
     with open(log_path, "w") as log, open(os.path.join(workdir, "stdout.jsonl"), "w") as out:

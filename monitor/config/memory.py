@@ -31,7 +31,7 @@ def plan(config: Config, sample_rate: Optional[float] = None) -> List[Part]:
     """The memory of each part of `config`, at `sample_rate` (default: the
     config's; a file source's rate may only be known from the recording)."""
     from ..acquire.sources.stream import QUEUE_MAX_VALUES, QUEUE_SECONDS
-    from ..deliver.mqtt import HANDOFF_BYTES
+    from ..deliver.evidence_queue import HANDOFF_BYTES
     from ..deliver.queue import MEMORY_EVENTS
     from ..judge.baseline import MAX_VALUES
 

@@ -25,6 +25,12 @@ from typing import Iterable, List, Optional, Tuple
 from . import private
 from .queue import QueuedEvent, durable_connection, roll_back
 
+# Spectra and captures waiting in memory for the delivery thread to store
+# them (a refusing disk keeps them here): at most this many, and this many
+# bytes of spectrum lines (a choice of this project; see config/memory.py).
+HANDOFF = 1000
+HANDOFF_BYTES = 8 << 20
+
 log = logging.getLogger("bandwatch.delivery")
 
 SPECTRA = "spectra.sqlite"

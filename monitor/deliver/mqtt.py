@@ -50,7 +50,7 @@ from . import exposure
 from .base import TOPICS, Payload, Sink, topic
 from .capture_message import pack
 from .mqtt_client import PAHO2, client_id, connack_text, new_client, rc_value, read_password
-from .evidence_queue import CAPTURES, SPECTRA, EvidenceQueue, StoreRefused
+from .evidence_queue import CAPTURES, HANDOFF, HANDOFF_BYTES, SPECTRA, EvidenceQueue, StoreRefused
 from .payloads import Lines, encode
 from .queue import EventQueue, kept
 
@@ -61,11 +61,6 @@ CLOSE_TIMEOUT = 3.0  # seconds close() waits for the broker to confirm
 WINDOW = 16  # events in flight at once; paho's own limit is set above this
 SPECTRUM_WINDOW = 4  # spectra in flight at once
 CAPTURE_WINDOW = 1  # captures in flight at once (each may be megabytes)
-# Spectra and captures waiting in memory for the delivery thread to store
-# them (a refusing disk keeps them here): at most this many, and this many
-# bytes of spectrum lines (a choice of this project; see config/memory.py).
-HANDOFF = 1000
-HANDOFF_BYTES = 8 << 20
 Store = Union[EventQueue, EvidenceQueue]
 
 

@@ -61,20 +61,23 @@ class Lines:
         self.values = values
 
     def json(self) -> str:
-        text = ",".join(map("{:.4g}".format, self.values.tolist()))
-        text = _EXPONENT.sub(r"e\1\2", text)  # e-05 -> e-5, e+04 -> e4
-        text = _TEN_THOUSANDTHS.sub(_as_exponent, text)
-        return "[" + _NOT_FINITE.sub("null", text) + "]"
-
-
-_EXPONENT = re.compile(r"e\+?(-?)0*(\d)")
-# %g writes 1e-4 .. 1e-3 positionally (0.0001234); one byte shorter as 1.234e-4.
-_TEN_THOUSANDTHS = re.compile(r"(?<![\d.])0\.000(\d)(\d*)")
-_NOT_FINITE = re.compile(r"-?(?:nan|inf)")
-
-
-def _as_exponent(m: "re.Match[str]") -> str:
-    return f"{m.group(1)}.{m.group(2)}e-4" if m.group(2) else f"{m.group(1)}e-4"
+        values = self.values
+        items = list(map("{:.4g}".format, values.tolist()))
+        # %g writes 1e-4 .. 1e-3 positionally (0.0001234); 1.234e-4 is a
+        # byte shorter. Only values near that decade can be written so, and
+        # the text decides: each of those is looked at, no other.
+        near = np.abs(values)
+        for i in np.flatnonzero((near >= 9.99e-5) & (near < 1.001e-3)).tolist():
+            item = items[i]
+            if item.startswith(("0.000", "-0.000")):
+                sign = "-" if item[0] == "-" else ""
+                digits = item[len(sign) + 5 :]
+                items[i] = f"{sign}{digits[0]}.{digits[1:]}e-4" if len(digits) > 1 else f"{sign}{digits}e-4"
+        # %g's exponent has a sign and at least two digits: e-05 -> e-5, e+04 -> e4.
+        text = ",".join(items).replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
+        if not np.isfinite(values).all():
+            text = text.replace("-inf", "null").replace("inf", "null").replace("nan", "null")
+        return "[" + text + "]"
 
 
 def encode(payload: Payload) -> str:
