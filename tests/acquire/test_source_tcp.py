@@ -328,3 +328,45 @@ def test_server_port_in_use_is_a_clear_error():
     with pytest.raises(SourceError, match=f"127.0.0.1:{port}"):
         source.open()
     taken.close()
+
+
+# ------------------------------------------------------ gathering reads
+
+
+def _peer_for(kind, closing):
+    """An open source of `kind` and the plain socket at the other end."""
+    if kind == "tcp-client":
+        server = listener()
+        source = open_source(tcp_config(kind, server.getsockname()[1]))
+        source.open()
+        closing(source)
+        peer, _ = server.accept()
+        server.close()
+        return source, peer
+    source, address = open_server(closing)
+    return source, socket.create_connection(address, timeout=2.0)
+
+
+@pytest.mark.parametrize("kind", ["tcp-client", "tcp-server"])
+def test_a_slow_stream_is_read_in_few_gathered_reads(kind, closing):
+    # A choice of this project (README, Stream sources): a stream slower than
+    # two full reads per gathering time is read once per COALESCE_S, not once
+    # per frame. 100 frames sent one every 20 ms over 2 s: one read each
+    # without gathering; here at most one per COALESCE_S, plus the first.
+    from monitor.acquire.sources.stream import COALESCE_S
+
+    source, peer = _peer_for(kind, closing)
+    count = 100
+
+    def send():
+        for k in range(count):
+            peer.sendall(frames(k * N, 1, seq=k))
+            time.sleep(0.02)
+
+    sender = threading.Thread(target=send, daemon=True)
+    sender.start()
+    blocks = collect(source, count * N, seconds=10.0)
+    sender.join(5.0)
+    assert np.array_equal(np.concatenate([b.samples for b in blocks]), expected(0, count))
+    assert len(blocks) <= 2.0 / COALESCE_S + 3, len(blocks)
+    peer.close()

@@ -65,7 +65,9 @@ class Source:
         block = self._read(timeout)
         if block is None:
             return None
-        if not np.isfinite(block.samples).all():
+        # Integer samples (full_scale set) are finite by nature: only float
+        # samples are looked at.
+        if block.full_scale is None and not np.isfinite(block.samples).all():
             block = self._reject(block)
         n = block.samples.shape[0]
         self.blocks += 1

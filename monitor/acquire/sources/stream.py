@@ -9,8 +9,8 @@ udp) shares this machinery:
   at once the queued blocks that continue the first without a break (up to
   0.25 s of samples), as one Block: the per-block work (wake-up, health,
   ring writes) is done per batch, not per frame. TCP readers wait
-  COALESCE_S after a read that emptied the socket, so each read takes many
-  frames.
+  up to COALESCE_S after a read that emptied the socket (less once two full
+  reads of bytes wait), so each read takes many frames.
 
 * The queue holds about two seconds of samples (capped in memory for fast,
   wide streams). When it is full, a link that can push back (TCP) stops
@@ -87,13 +87,18 @@ READ_MAX = 65536
 # before it counts as a restart of the sender.
 JUMP_SLACK_S = 2.0
 
-# After a read that emptied a TCP socket, the reader lets this long of bytes
-# gather in the kernel's buffer before it reads again: one read, decode and
-# hand-off per 0.2 s (about one per result at common settings) instead of one
-# per frame, for at most this much more delay. A read that fills READ_MAX
-# reads again at once. (Serial and UDP read at once: a tty's buffer is
-# small, and each datagram is its own read.)
-COALESCE_S = 0.2
+# After a read that emptied a TCP socket, the reader lets bytes gather in
+# the kernel's buffer before it reads again: until READ_MAX bytes wait (the
+# kernel wakes it: SO_RCVLOWAT), or this long has passed. So a slow stream
+# costs one read, decode and hand-off per 0.5 s instead of one per frame,
+# for at most this much more delay (a band's level changes only after
+# `delay`, 3 s unless set), and a fast one is read as fast as it comes. On
+# a small board each wake-up of a Python thread costs far more than the
+# bytes it handles: gathering for 0.2 s cost the monitor about a fifth more
+# CPU than 0.5 s (bench/live.py). A read that fills READ_MAX reads again at
+# once. (Serial and UDP read at once: a tty's buffer is small, and each
+# datagram is its own read.)
+COALESCE_S = 0.5
 
 LINK_COUNTERS = ("connects", "disconnects", "bytes", "overflows", "paused")
 
@@ -286,7 +291,12 @@ class StreamSource(Source):
             self._decoder.max_gap = int(self._room + wall + JUMP_SLACK_S * self.sample_rate)
         self._emit_decoded(self._decoder.feed(data, whole))
         if self.coalesce_s and len(data) < READ_MAX:
-            self._stop.wait(self.coalesce_s)
+            self._gather()
+
+    def _gather(self) -> None:
+        """Let bytes gather after a short read: up to `coalesce_s`, or less
+        (a kind may end the wait once READ_MAX bytes are waiting)."""
+        self._stop.wait(self.coalesce_s)
 
     def _connected(self, peer: str) -> None:
         """A new link is up: count it, end the outage, start decoding afresh."""

@@ -20,6 +20,7 @@ the pipeline's stale check reports it: nothing here guesses from silence.
 import errno
 import logging
 import os
+import select
 import selectors
 import socket
 from typing import Any, Optional, Tuple
@@ -46,6 +47,29 @@ def keepalive(sock: socket.socket) -> None:
             sock.setsockopt(socket.IPPROTO_TCP, option, value)
         except OSError:
             pass  # the platform refuses it; plain keepalive still applies
+
+
+# Bytes that end a gathering wait early: two full reads. A stream slower
+# than this per COALESCE_S is read once per COALESCE_S.
+GATHER_BYTES = 2 * READ_MAX
+
+
+def gather(sock: Optional[socket.socket], seconds: float) -> None:
+    """Wait until GATHER_BYTES are waiting on `sock`, it closes, or
+    `seconds` pass. The kernel does the counting: with SO_RCVLOWAT set,
+    select() reports the socket readable only once that many bytes are
+    queued (or at end of stream), so a fast stream is not held to one
+    kernel buffer per wait. The mark is set back to 1 for the reads."""
+    if sock is None:
+        return
+    try:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVLOWAT, GATHER_BYTES)
+        try:
+            select.select([sock], [], [], seconds)
+        finally:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVLOWAT, 1)
+    except (OSError, ValueError):
+        pass  # closed meanwhile (close() woke it): the read that follows says so
 
 
 class TcpClientSource(LinkSource):
@@ -118,6 +142,9 @@ class TcpClientSource(LinkSource):
         self._sock = None
         handle.close()
 
+    def _gather(self) -> None:
+        gather(self._sock, self.coalesce_s)
+
     def _peer(self, handle: socket.socket) -> str:
         return endpoint(*handle.getpeername()[:2])
 
@@ -138,6 +165,7 @@ class TcpServerSource(StreamSource):
     def __init__(self, config: SourceConfig) -> None:
         super().__init__(config)
         self._listener: Optional[socket.socket] = None
+        self._conn: Optional[socket.socket] = None  # the connection being read
         self.address: Optional[Tuple[str, int]] = None  # bound host and port, once open
 
     def describe(self) -> str:
@@ -208,8 +236,12 @@ class TcpServerSource(StreamSource):
         if not data:
             self._disconnected("the peer closed the connection")
             return False
+        self._conn = conn
         self._consume(data)
         return True
+
+    def _gather(self) -> None:
+        gather(self._conn, self.coalesce_s)
 
     def _release(self) -> None:
         if self._listener is not None:
