@@ -69,10 +69,10 @@ class Lines:
         near = np.abs(values)
         for i in np.flatnonzero((near >= 9.99e-5) & (near < 1.001e-3)).tolist():
             item = items[i]
-            if item.startswith(("0.000", "-0.000")):
-                sign = "-" if item[0] == "-" else ""
-                digits = item[len(sign) + 5 :]
-                items[i] = f"{sign}{digits[0]}.{digits[1:]}e-4" if len(digits) > 1 else f"{sign}{digits}e-4"
+            if item[:5] == "0.000":
+                items[i] = f"{item[5]}.{item[6:]}e-4" if len(item) > 6 else f"{item[5]}e-4"
+            elif item[:6] == "-0.000":
+                items[i] = f"-{item[6]}.{item[7:]}e-4" if len(item) > 7 else f"-{item[6]}e-4"
         # %g's exponent has a sign and at least two digits: e-05 -> e-5, e+04 -> e4.
         text = ",".join(items).replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
         if not np.isfinite(values).all():
