@@ -62,7 +62,7 @@ class Sink:
         raise NotImplementedError
 
     def tick(self) -> None:
-        """Called at every turn of the measuring loop (at least every 0.2 s,
+        """Called at every turn of the measuring loop (at least every 0.5 s,
         samples or not), in the measuring thread; must return at once. A
         backend that draws or polls does it here; most do nothing."""
 

@@ -43,7 +43,10 @@ from .results import BandState, CheckState, Observer, Result
 
 log = logging.getLogger("bandwatch.pipeline")
 
-READ_TIMEOUT_S = 0.2
+# Longest wait for a block before the loop turns anyway (health, reload,
+# stop, tickers). Not shorter: on a small board every turn of an idle loop
+# costs CPU, and TCP sources hand over a block about every 0.5 s.
+READ_TIMEOUT_S = 0.5
 # A helper thread (the source's reader, the sink's publisher) silent this
 # long is stuck: the watchdog pings stop, and systemd restarts the service.
 STALL_S = 10.0
