@@ -7,7 +7,8 @@ What runs, all on this machine:
   monitor     `python -m monitor run -c CONFIG` in its own process, on a copy
               of CONFIG whose [source] port and [mqtt] port and queue_dir are
               free ones of this run (the source must be a tcp-server taking
-              frames);
+              frames), as an installed service runs: from compiled bytecode,
+              with the `Environment=` settings of deploy/bandwatch.service;
   sender      this script: dials the monitor on 127.0.0.1 and sends int16
               frames of the wire format, 512 samples per channel each, paced
               at the sample rate by the clock (an invented machine: 1x, 2x,
