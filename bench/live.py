@@ -312,8 +312,8 @@ def measure(args: argparse.Namespace, workdir: str) -> int:
     # The environment the shipped systemd unit gives the service.
     env = dict(os.environ, **unit_environment(UNIT), NOTIFY_SOCKET=notify.path, PYTHONPATH=ROOT)
     # As installed: pip (and a distribution's package) compiles the bytecode
-    # at install time, so a service never compiles its sources at start;
-    # compiling them in the measured process would cost it about 2 MB.
+    # at install time, so a service never compiles its sources at start,
+    # which would add to the measured process's start-up CPU and memory.
     compileall.compile_dir(os.path.join(ROOT, "monitor"), quiet=1)
     env.pop("WATCHDOG_USEC", None)
     sender = Sender(src.port, loop_counts(config), src.sample_rate)

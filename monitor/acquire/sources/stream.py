@@ -88,8 +88,8 @@ READ_MAX = 65536
 JUMP_SLACK_S = 2.0
 
 # After a read that emptied a TCP socket, the reader lets bytes gather in
-# the kernel's buffer before it reads again: until READ_MAX bytes wait (the
-# kernel wakes it: SO_RCVLOWAT), or this long has passed. So a slow stream
+# the kernel's buffer before it reads again: until two full reads of bytes
+# wait (the kernel wakes it: SO_RCVLOWAT, tcp.py), or this long has passed. So a slow stream
 # costs one read, decode and hand-off per 0.5 s instead of one per frame,
 # for at most this much more delay (a band's level changes only after
 # `delay`, 3 s unless set), and a fast one is read as fast as it comes. On
@@ -294,8 +294,8 @@ class StreamSource(Source):
             self._gather()
 
     def _gather(self) -> None:
-        """Let bytes gather after a short read: up to `coalesce_s`, or less
-        (a kind may end the wait once READ_MAX bytes are waiting)."""
+        """Let bytes gather after a short read: `coalesce_s`. A kind that
+        can see its socket ends the wait early once enough bytes wait (TCP)."""
         self._stop.wait(self.coalesce_s)
 
     def _connected(self, peer: str) -> None:
