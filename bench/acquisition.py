@@ -45,6 +45,7 @@ from monitor.acquire.recording import RecordingWriter, open_recording  # noqa: E
 
 RATE = 25600
 CHANNELS = ("x", "y", "z")
+FRAME_N = 256  # samples per channel in each good frame of the decoding streams
 
 
 def best_of(runs: int, work: Callable[[], None], clock: Callable[[], float] = time.perf_counter) -> float:
@@ -71,7 +72,7 @@ def frame_streams() -> List[Tuple[str, List[bytes], bool]]:
     rng = np.random.default_rng(1)
 
     def frames(count: int) -> List[bytes]:
-        return [encode_frame(rng.integers(-2000, 2000, size=(256, 3)), seq) for seq in range(count)]
+        return [encode_frame(rng.integers(-2000, 2000, size=(FRAME_N, 3)), seq) for seq in range(count)]
 
     def damaged(frame: bytes) -> bytes:
         return frame[:-4] + bytes(b ^ 0xFF for b in frame[-4:])
@@ -90,7 +91,8 @@ def frame_streams() -> List[Tuple[str, List[bytes], bool]]:
 
 
 def bench_frames(pieces: List[bytes], datagrams: bool) -> float:
-    """MB/s of stream bytes decoded, every good frame coming out."""
+    """MB/s of stream bytes decoded, every good frame coming out (counted in
+    samples: a block may hold several frames)."""
     stream = b"".join(pieces)
     chunk = 64 * 1024
     chunks = pieces if datagrams else [stream[at : at + chunk] for at in range(0, len(stream), chunk)]
@@ -99,8 +101,8 @@ def bench_frames(pieces: List[bytes], datagrams: bool) -> float:
         decoder = make_decoder("frame", 3)
         got = 0
         for piece in chunks:
-            got += len(decoder.feed(piece, whole=datagrams))
-        assert got == len(pieces), got
+            got += sum(block.samples.shape[0] for block in decoder.feed(piece, whole=datagrams))
+        assert got == len(pieces) * FRAME_N, got
 
     return len(stream) / best_of(5, work, time.process_time) / 1e6
 
