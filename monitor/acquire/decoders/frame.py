@@ -166,6 +166,9 @@ class FrameDecoder(Decoder):
         self._open_at = _EMPTY
         self._open_end = _EMPTY
         self._next_end = _NOWHERE  # the first end of an open candidate
+        # A complete frame whose CRC `_run` found wrong, in this call: the
+        # scan counts it without checking it again.
+        self._failed = -1
 
     def feed(self, data: bytes, whole: bool = False) -> List[Block]:
         buf = self._buf
@@ -180,12 +183,13 @@ class FrameDecoder(Decoder):
             self._seen = max(self._seen, scan_to)
             return []
         out: List[Block] = []
+        self._failed = -1
         pos = 0  # everything before has been taken or skipped
         with memoryview(buf) as view:
             # A held candidate gets its one CRC check when its last byte is here.
             if end >= self._next_end:
                 done = open_end <= end
-                pos = self._take(buf, self._verify(buf, view, open_at[done], open_end[done]), pos, out)
+                pos = self._take(buf, view, self._verify(buf, view, open_at[done], open_end[done]), pos, out, True)
                 open_at, open_end = open_at[~done], open_end[~done]
             start = max(self._seen, pos)
             if scan_to > start:
@@ -230,6 +234,10 @@ class FrameDecoder(Decoder):
         window, count = i, 0
         passed = 0  # syncs looked at since max(pos, start), none of them taken
         while i >= 0:
+            if i == self._failed:
+                passed += 1
+                i = buf.find(SYNC, i + 2, stop + 1)
+                continue
             count += 1
             if count > _SMALL:
                 if i - window < _SMALL * _SPARSE:
@@ -243,8 +251,7 @@ class FrameDecoder(Decoder):
                 if i > pos:
                     # Syncs before `start` were read in an earlier call (one may end at `start`).
                     self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
-                self._accept(buf, i, out)
-                pos = i + size
+                pos = self._accept(buf, view, i, size, out, True)
                 passed = 0
                 i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
                 continue
@@ -255,23 +262,25 @@ class FrameDecoder(Decoder):
         if i >= 0:
             more_at, more_end = _headers(buf, i, stop)
             now = more_end <= end
-            pos = self._take(buf, self._verify(buf, view, more_at[now], more_end[now]), pos, out)
+            # These frames' CRCs were all checked at once: taken one by one, no run.
+            pos = self._take(buf, view, self._verify(buf, view, more_at[now], more_end[now]), pos, out, False)
             at = np.concatenate((at, more_at[~now]))
             ends = np.concatenate((ends, more_end[~now]))
         return at, ends, pos
 
-    def _take(self, buf: bytearray, good: List[Tuple[int, int]], pos: int, out: List[Block]) -> int:
+    def _take(self, buf: bytearray, view: memoryview, good: List[Tuple[int, int]], pos: int,
+              out: List[Block], runs: bool) -> int:
         """Take these good frames (offset, end; ascending) that start at or
         after `pos`, and skip what lies before each: syncs with a header out
         of range or a bad CRC, and held headers whose claimed bytes hold the
-        good frame. Returns where the last frame taken ends."""
+        good frame. With `runs`, the frames that continue each are taken
+        with it. Returns where the last frame taken ends."""
         for at, stop in good:
             if at < pos:
-                continue  # starts inside the frame just taken
+                continue  # starts inside a frame just taken
             if at > pos:
                 self._skip(buf, pos, at)
-            self._accept(buf, at, out)
-            pos = stop
+            pos = self._accept(buf, view, at, stop - at, out, runs)
         return pos
 
     def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
@@ -291,8 +300,10 @@ class FrameDecoder(Decoder):
         good = span_crcs(view, at + 2, crc_at) == stored
         return list(zip(at[good].tolist(), stop[good].tolist()))
 
-    def _accept(self, buf: bytearray, i: int, out: List[Block]) -> None:
-        """Take the good frame at `i`: sequence bookkeeping, then deliver or drop."""
+    def _accept(self, buf: bytearray, view: memoryview, i: int, size: int, out: List[Block], run: bool) -> int:
+        """Take the good frame at `i` (`size` bytes), with `run` the frames
+        that continue it too (`_run`): sequence bookkeeping, then deliver or
+        drop. Returns where what was taken ends."""
         _version, stype, nch, flags, n, seq = _HEAD.unpack_from(buf, i + 2)
         counters = self.counters
         lost = 0
@@ -313,24 +324,70 @@ class FrameDecoder(Decoder):
         if nch != self.channels:
             counters["mismatched"] += 1
             self._pending_lost += lost + n
-            return
+            return i + size
         at = i + HEADER_SIZE
         timestamp = None
         if flags & FLAG_TIMESTAMP:
             timestamp = _U64.unpack_from(buf, at)[0]
             at += TIMESTAMP_SIZE
-        samples = np.frombuffer(buf, _TYPES[stype], n * nch, at).astype(np.float64).reshape(n, nch)
-        if stype == FLOAT32 and not np.isfinite(samples).all():
-            counters["nonfinite"] += 1
-            self._pending_lost += lost + n
-            return
-        counters["frames"] += 1
+        frames = 1 + self._run(buf, view, i, size, seq) if run else 1
+        dtype = _TYPES[stype]
+        # One row per frame: its samples, a strided view of the buffer.
+        rows = np.ndarray((frames, n * nch), dtype, buf, at, (size, dtype.itemsize))
+        if stype == FLOAT32 and not np.isfinite(rows).all():
+            # The run ends before the first frame with NaN or infinity; that
+            # frame alone is dropped.
+            frames = int(np.isfinite(rows).all(axis=1).argmin())
+            if not frames:
+                counters["nonfinite"] += 1
+                self._pending_lost += lost + n
+                return i + size
+            rows = rows[:frames]
+        self._expected = (seq + frames) % _SEQ_MOD
+        counters["frames"] += frames
         lost += self._pending_lost
         restart = self._pending_restart
+        # The one copy out of the buffer, and the one conversion.
+        samples = rows.astype(np.float64).reshape(frames * n, nch)
         out.append(Block(samples=samples, lost=max(lost, 1) if restart else lost, full_scale=_FULL_SCALE.get(stype),
                          timestamp_us=timestamp, restart=restart))
         self._pending_lost = 0
         self._pending_restart = False
+        return i + frames * size
+
+    def _run(self, buf: bytearray, view: memoryview, i: int, size: int, seq: int) -> int:
+        """How many frames right behind the good frame at `i` (`size` bytes,
+        sequence number `seq`) continue it: complete, back to back, with the
+        same first 8 header bytes (sync, version, type, channels, flags, n),
+        the next sequence numbers and a good CRC. Frame by frame they would
+        be taken one after the other with nothing lost between; here they
+        are checked at once."""
+        count = (len(buf) - i) // size - 1  # room for this many complete frames behind it
+        nxt = i + size
+        # The next frame alone in plain code first: behind a lone good frame
+        # (garbage, another shape, a damaged frame, the end of the chunk)
+        # numpy would cost more than it saves.
+        if (count < 1 or _U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
+                or _U32.unpack_from(buf, nxt + 8)[0] != (seq + 1) % _SEQ_MOD):
+            return 0
+        if not _crc_matches(buf, view, nxt, nxt + size):
+            self._failed = nxt  # the scan, which goes on there, counts it
+            return 0
+        if count == 1:
+            return 1
+        # The headers after it all at once, through strided views of the buffer.
+        after = nxt + size
+        heads = np.ndarray((count - 1,), "<u8", buf, after, (size,))
+        seqs = np.ndarray((count - 1,), "<u4", buf, after + 8, (size,))
+        ok = (heads == np.uint64(_U64.unpack_from(buf, i)[0])) & (
+            seqs - np.uint32(seq) == np.arange(2, count + 1, dtype=np.uint32))
+        regular = count - 1 if ok.all() else int(ok.argmin())
+        for k in range(regular):
+            at = after + k * size
+            if not _crc_matches(buf, view, at, at + size):
+                self._failed = at
+                return 1 + k
+        return 1 + regular
 
 
 # Largest positive value of each integer sample type: samples there are clipped.
