@@ -804,6 +804,25 @@ def test_a_run_of_good_frames_is_one_block():
     assert np.array_equal(np.concatenate([first[0].samples, second[0].samples]), np.concatenate(values))
 
 
+@pytest.mark.parametrize("breaks", [[], [33], [34], [97], [98], [1, 2, 3], [200, 201], [40, 150, 260]])
+def test_long_runs_break_exactly_where_frames_stop_following_on(breaks):
+    # 300 frames: the decoder reads the headers of a long run in windows
+    # (32 frames, then twice as many each time); a break is put at the
+    # edges of those windows.
+    frames = run_of(300, n=1)
+    for k in breaks:
+        frames[k] = damaged_samples(frames[k])
+    stream = b"".join(frames)
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(stream)
+    want, counters = frame_by_frame(stream, 1, MAX_GAP)
+    assert len(out) == 1 + sum(k - 1 not in breaks for k in breaks)  # one block per unbroken stretch
+    assert len(joined(out)) == len(joined(want))
+    for (samples, *rest), (want_samples, *want_rest) in zip(joined(out), joined(want)):
+        assert np.array_equal(samples, want_samples) and rest == want_rest
+    assert decoder.counters == counters
+
+
 def damaged_samples(frame: bytes) -> bytes:
     """The frame with one bit of its first sample flipped: its CRC fails."""
     return frame[:12] + bytes([frame[12] ^ 0x01]) + frame[13:]

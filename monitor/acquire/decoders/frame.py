@@ -87,6 +87,7 @@ for _flags in (0, FLAG_TIMESTAMP):
 _SMALL = 16
 _SPARSE = 256
 _LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
+_RUN_WINDOW = 32  # headers read at once when a run of frames starts (0.2 s of a common stream)
 _EMPTY = np.zeros(0, dtype=np.int64)
 _NOWHERE = 1 << 62  # an end no buffer reaches
 
@@ -373,21 +374,29 @@ class FrameDecoder(Decoder):
         if not _crc_matches(buf, view, nxt, nxt + size):
             self._failed = nxt  # the scan, which goes on there, counts it
             return 0
-        if count == 1:
-            return 1
-        # The headers after it all at once, through strided views of the buffer.
-        after = nxt + size
-        heads = np.ndarray((count - 1,), "<u8", buf, after, (size,))
-        seqs = np.ndarray((count - 1,), "<u4", buf, after + 8, (size,))
-        ok = (heads == np.uint64(_U64.unpack_from(buf, i)[0])) & (
-            seqs - np.uint32(seq) == np.arange(2, count + 1, dtype=np.uint32))
-        regular = count - 1 if ok.all() else int(ok.argmin())
-        for k in range(regular):
-            at = after + k * size
-            if not _crc_matches(buf, view, at, at + size):
-                self._failed = at
-                return 1 + k
-        return 1 + regular
+        head = np.uint64(_U64.unpack_from(buf, i)[0])
+        taken = 1  # frames behind the one at `i` that continue it
+        window = _RUN_WINDOW
+        while taken < count:
+            # The next headers at once, through strided views of the buffer.
+            # The window doubles while the run goes on, so the work stays in
+            # proportion to the frames taken however often runs break.
+            m = min(window, count - taken)
+            at = nxt + taken * size
+            heads = np.ndarray((m,), "<u8", buf, at, (size,))
+            seqs = np.ndarray((m,), "<u4", buf, at + 8, (size,))
+            ok = (heads == head) & (seqs - np.uint32(seq) == np.arange(taken + 1, taken + 1 + m, dtype=np.uint32))
+            regular = m if ok.all() else int(ok.argmin())
+            for k in range(regular):
+                start = at + k * size
+                if not _crc_matches(buf, view, start, start + size):
+                    self._failed = start
+                    return taken + k
+            taken += regular
+            if regular < m:
+                break
+            window *= 2
+        return taken
 
 
 # Largest positive value of each integer sample type: samples there are clipped.
