@@ -99,8 +99,8 @@ for _flags in (0, FLAG_TIMESTAMP):
 _SMALL = 16
 _SPARSE = 256
 _LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
-# Headers read at once when a run of frames starts: a TCP read of 0.2 s of a
-# 25.6 kS/s stream in 512-sample frames holds 30.
+# Headers read at once when a run of frames starts (a TCP read of 0.2 s of a
+# 25.6 kS/s stream in 512-sample frames holds 10).
 _RUN_WINDOW = 32
 _EMPTY = np.zeros(0, dtype=np.int64)
 _NOWHERE = 1 << 62  # an end no buffer reaches
