@@ -346,7 +346,9 @@ class FrameDecoder(Decoder):
         if flags & FLAG_TIMESTAMP:
             timestamp = _U64.unpack_from(buf, at)[0]
             at += TIMESTAMP_SIZE
-        frames = 1 + self._run(buf, view, i, size, seq) if run else 1
+        frames = 1
+        if run and len(buf) - i >= 2 * size and buf[i + size] == SYNC[0]:
+            frames += self._run(buf, view, i, size, seq)  # a frame as long may start right behind
         dtype = _TYPES[stype]
         if frames == 1:
             data = np.frombuffer(buf, dtype, n * nch, at)
@@ -361,7 +363,8 @@ class FrameDecoder(Decoder):
                 self._pending_lost += lost + n
                 return i + size
             data = data[:frames]
-        self._expected = (seq + frames) % _SEQ_MOD
+        if frames > 1:
+            self._expected = (seq + frames) % _SEQ_MOD
         counters["frames"] += frames
         lost += self._pending_lost
         restart = self._pending_restart
@@ -379,13 +382,13 @@ class FrameDecoder(Decoder):
         same first 8 header bytes (sync, version, type, channels, flags, n),
         the next sequence numbers and a good CRC. Frame by frame they would
         be taken one after the other with nothing lost between; here they
-        are checked at once."""
+        are checked at once. There is room for one at least."""
         count = (len(buf) - i) // size - 1  # room for this many complete frames behind it
         nxt = i + size
         # The next frame alone in plain code first: behind a lone good frame
-        # (garbage, another shape, a damaged frame, the end of the chunk)
-        # numpy would cost more than it saves.
-        if (count < 1 or _U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
+        # (garbage, another shape, a damaged frame) numpy would cost more
+        # than it saves.
+        if (_U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
                 or _U32.unpack_from(buf, nxt + 8)[0] != (seq + 1) % _SEQ_MOD):
             return 0
         if not _crc_matches(buf, view, nxt, nxt + size):
