@@ -259,7 +259,8 @@ class FrameDecoder(Decoder):
                 if i - window < _SMALL * _SPARSE:
                     break  # dense syncs: the rest is read with numpy below
                 window, count = i, 1
-            size = _frame_size(*_HEAD.unpack_from(buf, i + 2)[:5])
+            head = _HEAD.unpack_from(buf, i + 2)
+            size = _frame_size(*head[:5])
             if size and i + size > end:
                 found_at.append(i)
                 found_end.append(i + size)
@@ -267,7 +268,7 @@ class FrameDecoder(Decoder):
                 if i > pos:
                     # Syncs before `start` were read in an earlier call (one may end at `start`).
                     self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
-                pos = self._accept(buf, view, i, size, out, True)
+                pos = self._accept(buf, view, i, size, head, out, True)
                 passed = 0
                 i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
                 continue
@@ -296,7 +297,7 @@ class FrameDecoder(Decoder):
                 continue  # starts inside a frame just taken
             if at > pos:
                 self._skip(buf, pos, at)
-            pos = self._accept(buf, view, at, stop - at, out, runs)
+            pos = self._accept(buf, view, at, stop - at, _HEAD.unpack_from(buf, at + 2), out, runs)
         return pos
 
     def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
@@ -316,11 +317,13 @@ class FrameDecoder(Decoder):
         good = span_crcs(view, at + 2, crc_at) == stored
         return list(zip(at[good].tolist(), stop[good].tolist()))
 
-    def _accept(self, buf: bytearray, view: memoryview, i: int, size: int, out: List[Block], run: bool) -> int:
-        """Take the good frame at `i` (`size` bytes), with `run` the frames
-        that continue it too (`_run`): sequence bookkeeping, then deliver or
-        drop. Returns where what was taken ends."""
-        _version, stype, nch, flags, n, seq = _HEAD.unpack_from(buf, i + 2)
+    def _accept(self, buf: bytearray, view: memoryview, i: int, size: int, head: Tuple[int, ...], out: List[Block],
+                run: bool) -> int:
+        """Take the good frame at `i` (`size` bytes, `head` its header as
+        _HEAD reads it), with `run` the frames that continue it too (`_run`):
+        sequence bookkeeping, then deliver or drop. Returns where what was
+        taken ends."""
+        _version, stype, nch, flags, n, seq = head
         counters = self.counters
         lost = 0
         expected = self._expected
