@@ -807,8 +807,8 @@ def test_a_run_of_good_frames_is_one_block():
 @pytest.mark.parametrize("breaks", [[], [33], [34], [97], [98], [1, 2, 3], [200, 201], [40, 150, 260]])
 def test_long_runs_break_exactly_where_frames_stop_following_on(breaks):
     # 300 frames: the decoder reads the headers of a long run in windows
-    # (32 frames, then twice as many each time); a break is put at the
-    # edges of those windows.
+    # (32 frames, then twice as many each time); a break (a frame with a bad
+    # CRC) is put at the edges of those windows.
     frames = run_of(300, n=1)
     for k in breaks:
         frames[k] = damaged_samples(frames[k])
@@ -816,7 +816,11 @@ def test_long_runs_break_exactly_where_frames_stop_following_on(breaks):
     decoder = make_decoder("frame", 1)
     out = decoder.feed(stream)
     want, counters = frame_by_frame(stream, 1, MAX_GAP)
-    assert len(out) == 1 + sum(k - 1 not in breaks for k in breaks)  # one block per unbroken stretch
+    # The stretches of intact frames: the first is one block; behind a
+    # damaged frame, the first intact one is a block alone, the rest one.
+    stretches = [len(s) for s in "".join("x" if k in breaks else "." for k in range(300)).split("x") if s]
+    sizes = stretches[:1] + [size for length in stretches[1:] for size in (1, length - 1) if size]
+    assert [b.samples.shape[0] for b in out] == sizes
     assert len(joined(out)) == len(joined(want))
     for (samples, *rest), (want_samples, *want_rest) in zip(joined(out), joined(want)):
         assert np.array_equal(samples, want_samples) and rest == want_rest
@@ -830,7 +834,7 @@ def damaged_samples(frame: bytes) -> bytes:
 
 @pytest.mark.parametrize("irregular, sizes, lost, counts", [
     # frame 5 of 10 (n = 4 samples each) breaks the run:
-    ("bad crc", [20, 16], [0, 4], {"corrupt_frames": 1, "gaps": 1}),  # its samples are lost
+    ("bad crc", [20, 4, 12], [0, 4, 0], {"corrupt_frames": 1, "gaps": 1}),  # its samples are lost; 6 comes alone
     ("other n", [20, 3, 16], [0, 0, 0], {}),  # sequence unbroken: no loss
     ("sequence jump", [20, 20], [0, 3 * 4], {"gaps": 1}),  # frames 5, 6, 7 missing
     ("repeated", [20, 4, 16], [0, 1, 4], {"restarts": 1, "gaps": 1}),  # back to 4: restart; then 5 -> 6 is a gap

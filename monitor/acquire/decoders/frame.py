@@ -25,16 +25,20 @@ frame cut short. It is dropped at once instead of stalling the stream until
 the bytes it claimed have arrived. Fed with `whole=True` (a UDP datagram, which
 holds whole frames) nothing is held: what is left at the end is dropped.
 
-Runs: a sensor sends frames back to back, and one read holds many. The
-frames right behind a good frame that follow on from it (complete, with the
-same header but for a sequence number one higher each) are taken with it as
-one Block: their headers are compared at once with numpy, through strided
-views of the buffer, each one's CRC is checked, and their samples are copied
-and converted once. The Block carries the first frame's timestamp. Nothing is
-lost between the frames of a run, so a gap, a restart, or another sample
-type, channel count, timestamp flag or n always starts a new Block. The
-first frame that does not follow on, or a float32 frame holding NaN or
-infinity, ends the run and is taken or rejected on its own, as above.
+Runs: a sensor sends frames back to back, and one read holds many. Behind a
+good frame with nothing skipped before it (the first of a chunk, or one
+right behind the frame taken last), the frames that follow on from it
+(complete, with the same header but for a sequence number one higher each)
+are taken with it as one Block: their headers are compared at once with
+numpy, through strided views of the buffer, each one's CRC is checked, and
+their samples are copied and converted once. The Block carries the first
+frame's timestamp. Nothing is lost between the frames of a run, so a gap, a
+restart, or another sample type, channel count, timestamp flag or n always
+starts a new Block. The first frame that does not follow on, or a float32
+frame holding NaN or infinity, ends the run and is taken or rejected on its
+own, as above. A good frame behind skipped bytes is taken alone: on hostile
+input it mostly is alone, and looking behind it would cost time there; a run
+that resumes after a damaged frame is found from its second frame on.
 
 Cost on hostile input: bytes are scanned for syncs once, each header is read
 once, bar those a run's check reads ahead (in windows that double: at most
@@ -268,7 +272,7 @@ class FrameDecoder(Decoder):
                 if i > pos:
                     # Syncs before `start` were read in an earlier call (one may end at `start`).
                     self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
-                pos = self._accept(buf, view, i, size, head, out, True)
+                pos = self._accept(buf, view, i, size, head, out, i == pos)
                 passed = 0
                 i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
                 continue
@@ -297,7 +301,7 @@ class FrameDecoder(Decoder):
                 continue  # starts inside a frame just taken
             if at > pos:
                 self._skip(buf, pos, at)
-            pos = self._accept(buf, view, at, stop - at, _HEAD.unpack_from(buf, at + 2), out, runs)
+            pos = self._accept(buf, view, at, stop - at, _HEAD.unpack_from(buf, at + 2), out, runs and at == pos)
         return pos
 
     def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
@@ -350,8 +354,8 @@ class FrameDecoder(Decoder):
             timestamp = _U64.unpack_from(buf, at)[0]
             at += TIMESTAMP_SIZE
         frames = 1
-        if run and len(buf) - i >= 2 * size and buf[i + size] == SYNC[0]:
-            frames += self._run(buf, view, i, size, seq)  # a frame as long may start right behind
+        if run:
+            frames += self._run(buf, view, i, size, seq)
         dtype = _TYPES[stype]
         if frames == 1:
             data = np.frombuffer(buf, dtype, n * nch, at)
@@ -372,7 +376,7 @@ class FrameDecoder(Decoder):
         lost += self._pending_lost
         restart = self._pending_restart
         # The one copy out of the buffer, and the one conversion.
-        samples = data.astype(np.float64).reshape(frames * n, nch)
+        samples = data.astype(np.float64).reshape(-1, nch)
         out.append(Block(samples=samples, lost=max(lost, 1) if restart else lost, full_scale=_FULL_SCALE.get(stype),
                          timestamp_us=timestamp, restart=restart))
         self._pending_lost = 0
@@ -385,13 +389,13 @@ class FrameDecoder(Decoder):
         same first 8 header bytes (sync, version, type, channels, flags, n),
         the next sequence numbers and a good CRC. Frame by frame they would
         be taken one after the other with nothing lost between; here they
-        are checked at once. There is room for one at least."""
+        are checked at once."""
         count = (len(buf) - i) // size - 1  # room for this many complete frames behind it
         nxt = i + size
         # The next frame alone in plain code first: behind a lone good frame
-        # (garbage, another shape, a damaged frame) numpy would cost more
-        # than it saves.
-        if (_U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
+        # (garbage, another shape, a damaged frame, the end of the chunk)
+        # numpy would cost more than it saves.
+        if (count < 1 or _U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
                 or _U32.unpack_from(buf, nxt + 8)[0] != (seq + 1) % _SEQ_MOD):
             return 0
         if not _crc_matches(buf, view, nxt, nxt + size):
