@@ -292,6 +292,9 @@ def test_sequence_jump_is_a_gap_with_lost_samples():
     assert [(d.samples.shape[0], d.lost) for d in out] == [(8, 0), (5, 3 * 5)]
     assert decoder.counters["gaps"] == 1
     assert decoder.counters["lost_samples"] == 15
+    # A jump right behind the first frame of a chunk.
+    out = decoder.feed(small(16, n=5) + small(20, n=5))
+    assert [(d.samples.shape[0], d.lost) for d in out] == [(5, 0), (5, 3 * 5)]
 
 
 def test_wraparound_is_not_a_gap():
