@@ -830,6 +830,28 @@ def test_long_runs_break_exactly_where_frames_stop_following_on(breaks):
     assert decoder.counters == counters
 
 
+def test_each_frame_crc_is_computed_once(monkeypatch):
+    # A design rule of this decoder (frame.py's docstring): each candidate's
+    # CRC is checked once, a damaged frame right behind a run included.
+    import monitor.acquire.decoders.frame as frame_module
+
+    calls = []
+
+    class CountingZlib:
+        @staticmethod
+        def crc32(data):
+            calls.append(len(data))
+            return zlib.crc32(data)
+
+    monkeypatch.setattr(frame_module, "zlib", CountingZlib)
+    frames = run_of(16)
+    frames[10] = damaged_samples(frames[10])
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(b"".join(frames))
+    assert [b.samples.shape[0] for b in out] == [40, 4, 16]
+    assert len(calls) == 16
+
+
 def damaged_samples(frame: bytes) -> bytes:
     """The frame with one bit of its first sample flipped: its CRC fails."""
     return frame[:12] + bytes([frame[12] ^ 0x01]) + frame[13:]

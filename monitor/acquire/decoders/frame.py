@@ -187,7 +187,7 @@ class FrameDecoder(Decoder):
         self._open_end = _EMPTY
         self._next_end = _NOWHERE  # the first end of an open candidate
         # A complete frame whose CRC `_run` found wrong, in this call: the
-        # scan counts it without checking it again.
+        # scan rejects it without checking it again.
         self._failed = -1
 
     def feed(self, data: bytes, whole: bool = False) -> List[Block]:
@@ -254,10 +254,6 @@ class FrameDecoder(Decoder):
         window, count = i, 0
         passed = 0  # syncs looked at since max(pos, start), none of them taken
         while i >= 0:
-            if i == self._failed:
-                passed += 1
-                i = buf.find(SYNC, i + 2, stop + 1)
-                continue
             count += 1
             if count > _SMALL:
                 if i - window < _SMALL * _SPARSE:
@@ -268,7 +264,7 @@ class FrameDecoder(Decoder):
             if size and i + size > end:
                 found_at.append(i)
                 found_end.append(i + size)
-            elif size and _crc_matches(buf, view, i, i + size):
+            elif size and i != self._failed and _crc_matches(buf, view, i, i + size):
                 if i > pos:
                     # Syncs before `start` were read in an earlier call (one may end at `start`).
                     self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
@@ -399,7 +395,7 @@ class FrameDecoder(Decoder):
                 or _U32.unpack_from(buf, nxt + 8)[0] != (seq + 1) % _SEQ_MOD):
             return 0
         if not _crc_matches(buf, view, nxt, nxt + size):
-            self._failed = nxt  # the scan, which goes on there, counts it
+            self._failed = nxt  # the scan, which goes on there, rejects it
             return 0
         head = np.uint64(_U64.unpack_from(buf, i)[0])
         taken = 1  # frames behind the one at `i` that continue it
