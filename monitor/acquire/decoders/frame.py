@@ -290,8 +290,9 @@ class FrameDecoder(Decoder):
         """Take these good frames (offset, end; ascending) that start at or
         after `pos`, and skip what lies before each: syncs with a header out
         of range or a bad CRC, and held headers whose claimed bytes hold the
-        good frame. With `runs`, the frames that continue each are taken
-        with it. Returns where the last frame taken ends."""
+        good frame. With `runs`, a frame with nothing skipped before it is
+        taken with the frames that continue it. Returns where the last frame
+        taken ends."""
         for at, stop in good:
             if at < pos:
                 continue  # starts inside a frame just taken
