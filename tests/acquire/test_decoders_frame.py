@@ -58,6 +58,12 @@ def decode_all(data: bytes, channels: int, chunk: int = 0) -> List[Block]:
     return out
 
 
+def in_order(arrays, channels: int) -> np.ndarray:
+    """These sample arrays (n, channels) one after the other, as float64: every
+    sample decoded, whatever frames the decoder took together in a block."""
+    return np.concatenate([np.zeros((0, channels))] + list(arrays))
+
+
 def feed_in_pieces(decoder, stream: bytes, cuts: List[int]) -> List[Block]:
     """Feed `stream` cut into pieces of the sizes in `cuts`, then the rest."""
     out: List[Block] = []
@@ -179,10 +185,8 @@ def test_every_intact_frame_decoded_once_in_order(case, cuts):
     channels, stream, blocks, garbage = case
     decoder = make_decoder("frame", channels)
     out = feed_in_pieces(decoder, stream, cuts)
-    assert len(out) == len(blocks)
-    for got, want in zip(out, blocks):
-        assert np.array_equal(got.samples, want)
-        assert got.lost == 0
+    assert np.array_equal(in_order([b.samples for b in out], channels), in_order(blocks, channels))
+    assert all(got.lost == 0 for got in out)
     c = decoder.counters
     assert c["frames"] == len(blocks)
     assert c["gaps"] == 0 and c["mismatched"] == 0 and c["nonfinite"] == 0
@@ -284,16 +288,20 @@ def test_header_fields_out_of_range_with_a_valid_crc(field):
 def test_sequence_jump_is_a_gap_with_lost_samples():
     decoder = make_decoder("frame", 1)
     out = decoder.feed(small(10, n=4) + small(11, n=4) + small(15, n=5))
-    assert [d.lost for d in out] == [0, 0, 3 * 5]  # frames 12, 13, 14 missing, n of the arriving frame
+    # Frames 10 and 11 follow on (one block); 12, 13, 14 are missing, n of the arriving frame.
+    assert [(d.samples.shape[0], d.lost) for d in out] == [(8, 0), (5, 3 * 5)]
     assert decoder.counters["gaps"] == 1
     assert decoder.counters["lost_samples"] == 15
+    # A jump right behind the first frame of a chunk.
+    out = decoder.feed(small(16, n=5) + small(20, n=5))
+    assert [(d.samples.shape[0], d.lost) for d in out] == [(5, 0), (5, 3 * 5)]
 
 
 def test_wraparound_is_not_a_gap():
     decoder = make_decoder("frame", 1)
     out = decoder.feed(small(0xFFFFFFFE) + small(0xFFFFFFFF) + small(0) + small(1))
-    assert [d.lost for d in out] == [0, 0, 0, 0]
-    assert decoder.counters["gaps"] == 0
+    assert [(d.samples.shape[0], d.lost) for d in out] == [(8, 0)]  # one run across the wrap
+    assert decoder.counters["gaps"] == 0 and decoder.counters["frames"] == 4
     out = decoder.feed(small(0xFFFFFFFF))  # 2 -> 0xFFFFFFFF: backwards, a restart
     assert decoder.counters["gaps"] == 0 and decoder.counters["restarts"] == 1
     assert out[0].restart and out[0].lost == 1
@@ -304,7 +312,7 @@ def test_a_backward_jump_restarts_sequence_tracking():
     out = decoder.feed(small(500) + small(501) + small(7) + small(8) + small(10))
     # The sender started again at 7: no gap is measured from 501 to 7, and
     # 7 -> 8 -> 10 is tracked afresh (frame 9 missing: 2 samples).
-    assert [(d.lost, d.restart) for d in out] == [(0, False), (0, False), (1, True), (0, False), (2, False)]
+    assert [(d.samples.shape[0], d.lost, d.restart) for d in out] == [(4, 0, False), (4, 1, True), (2, 2, False)]
     assert (decoder.counters["restarts"], decoder.counters["gaps"], decoder.counters["lost_samples"]) == (1, 1, 2)
 
 
@@ -313,7 +321,7 @@ def test_a_jump_beyond_max_gap_is_a_restart_not_a_billion_lost_samples():
     decoder.max_gap = 100  # the most samples per channel a jump may stand for
     out = decoder.feed(small(0) + small(50) + small(1_000_000_000) + small(1_000_000_001))
     # 0 -> 50 is 49 frames of 2 samples, 98 <= 100: a gap. The jump to 1e9 is not.
-    assert [(d.lost, d.restart) for d in out] == [(0, False), (98, False), (1, True), (0, False)]
+    assert [(d.samples.shape[0], d.lost, d.restart) for d in out] == [(2, 0, False), (2, 98, False), (4, 1, True)]
     assert decoder.counters["lost_samples"] == 98 and decoder.counters["restarts"] == 1
     decoder.max_gap = None  # no bound: the sequence is taken at its word
     out = decoder.feed(small(1_000_000_101))
@@ -496,9 +504,7 @@ def test_hostile_streams_decode_as_the_rules_say(case, cuts):
     want, corrupt_frames, corrupt_bytes, held = reference_decode(stream, channels)
     decoder = make_decoder("frame", channels)
     got = feed_in_pieces(decoder, stream, cuts)
-    assert len(got) == len(want)
-    for d, w in zip(got, want):
-        assert np.array_equal(d.samples, w)
+    assert np.array_equal(in_order([b.samples for b in got], channels), in_order(want, channels))
     c = decoder.counters
     assert (c["frames"], c["corrupt_frames"], c["corrupt_bytes"], decoder.buffered) == (
         len(want), corrupt_frames, corrupt_bytes, held)
@@ -509,8 +515,8 @@ def test_nested_false_headers_then_good_frames():
     # channels of 4096 samples), then good frames: all of them come out, and
     # every false sync is counted. Fed at once, in small pieces, and whole.
     junk = NESTED * 8100
-    frames = [hand_frame(np.full((64, 2), k), k) for k in range(5)]
-    stream = junk + b"".join(frames)
+    values = [np.full((64, 2), k) for k in range(5)]
+    stream = junk + b"".join(hand_frame(v, k) for k, v in enumerate(values))
     for chunk, whole in ((0, False), (1000, False), (0, True)):
         decoder = make_decoder("frame", 2)
         if chunk:
@@ -519,7 +525,7 @@ def test_nested_false_headers_then_good_frames():
                 out += decoder.feed(stream[at : at + chunk])
         else:
             out = decoder.feed(stream, whole=whole)
-        assert [d.samples[0, 0] for d in out] == [0, 1, 2, 3, 4]
+        assert np.array_equal(in_order([d.samples for d in out], 2), in_order(values, 2))
         assert all(d.lost == 0 for d in out)
         assert decoder.counters["corrupt_frames"] == 8100
         assert decoder.counters["corrupt_bytes"] == len(junk)
@@ -594,6 +600,297 @@ def test_whole_input_holds_nothing_back():
     assert not decoder.truncated
     # Frame 1 never arrived whole: its samples are a gap before frame 2.
     assert [d.samples[0, 0] for d in out] == [7] and out[0].lost == 2
+
+
+# ------------------------------------------------------------- runs of frames
+#
+# Frames that follow on (back to back, one shape, consecutive sequence
+# numbers) come out together as one block, a choice of this project that
+# saves work per frame. That must change nothing but where blocks are cut.
+# `frame_by_frame` is this test's own reference: the simplest decoder of the
+# layout in the README's table (and frame.py's docstring), one sync and one
+# frame at a time over the whole stream, with the sequence rules of the
+# README and frame.py's docstring (a jump forward is a gap of k * n samples
+# unless that exceeds max_gap; that, or a jump back, is a restart; a dropped
+# frame's samples are lost before the next block).
+
+COUNTERS = ("frames", "corrupt_frames", "corrupt_bytes", "gaps", "lost_samples", "restarts", "mismatched", "nonfinite")
+# The largest positive value of each integer sample type (two's complement); none for float32.
+FULL_SCALE_OF = {1: float(2**15 - 1), 2: float(2**31 - 1), 3: None}
+
+
+def frame_by_frame(stream: bytes, channels: int, max_gap: int):
+    """(blocks, counters) of `stream`, one frame at a time. The stream must
+    end with a frame whose CRC matches, so that nothing before it is left
+    waiting: every sync that does not start such a frame is rejected."""
+    counters = dict.fromkeys(COUNTERS, 0)
+    blocks: List[Block] = []
+    expected: Optional[int] = None
+    carried, restart = 0, False  # for the next block: samples of dropped frames, a restart
+    pos = 0
+    while True:
+        i = stream.find(b"\xa7\x4d", pos)
+        if i < 0:
+            counters["corrupt_bytes"] += len(stream) - pos
+            return blocks, counters
+        size = 0
+        if len(stream) - i >= 12:
+            version, stype, nch, flags, n, seq = struct.unpack_from("<BBBBHI", stream, i + 2)
+            if version == 1 and stype in DTYPES and 1 <= nch <= 16 and flags in (0, 1) and 1 <= n <= 4096:
+                size = 12 + 8 * flags + n * nch * np.dtype(DTYPES[stype]).itemsize + 4
+        if (not size or i + size > len(stream)
+                or zlib.crc32(stream[i + 2 : i + size - 4]) != struct.unpack_from("<I", stream, i + size - 4)[0]):
+            counters["corrupt_frames"] += 1
+            counters["corrupt_bytes"] += i + 1 - pos
+            pos = i + 1
+            continue
+        counters["corrupt_bytes"] += i - pos
+        pos = i + size
+        lost = 0
+        if expected is not None and seq != expected:
+            missing = (seq - expected) % 2**32
+            if missing >= 2**31 or missing * n > max_gap:
+                counters["restarts"] += 1
+                restart = True
+            else:
+                lost = missing * n
+                counters["gaps"] += 1
+                counters["lost_samples"] += lost
+        expected = (seq + 1) % 2**32
+        samples = np.frombuffer(stream, DTYPES[stype], n * nch, i + 12 + 8 * flags).reshape(n, nch).astype(float)
+        if nch != channels or not np.isfinite(samples).all():
+            counters["mismatched" if nch != channels else "nonfinite"] += 1
+            carried += lost + n
+            continue
+        counters["frames"] += 1
+        lost += carried
+        blocks.append(Block(samples=samples, lost=max(lost, 1) if restart else lost, full_scale=FULL_SCALE_OF[stype],
+                            timestamp_us=struct.unpack_from("<Q", stream, i + 12)[0] if flags else None,
+                            restart=restart))
+        carried, restart = 0, False
+
+
+def joined(blocks: List[Block]) -> List[tuple]:
+    """Consecutive blocks with nothing lost between them and one full scale,
+    joined as the stream source joins them: (samples, lost, restart,
+    timestamp of the first, full scale) each."""
+    groups: List[list] = []
+    for b in blocks:
+        if groups and not b.lost and not b.restart and b.full_scale == groups[-1][4]:
+            groups[-1][0].append(b.samples)
+        else:
+            groups.append([[b.samples], b.lost, b.restart, b.timestamp_us, b.full_scale])
+    return [(np.concatenate(parts), lost, restart, stamp, scale) for parts, lost, restart, stamp, scale in groups]
+
+
+@st.composite
+def streams_of_runs(draw):
+    """Runs of good frames of varying shapes, with sequence jumps, garbage,
+    damaged, cut-off, wrong-channel and NaN frames in and between them.
+    Returns (channels, pieces of the stream, the indices where a frame
+    starts a piece); the stream ends with a good frame."""
+    channels = draw(st.integers(1, 3))
+    rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
+    seq = draw(st.integers(0, 2**32 - 1))
+    pieces: List[bytes] = []
+    starts: List[int] = []  # pieces that begin with a frame's sync
+
+    def frame(samples: np.ndarray, stype: int, stamp: Optional[int]) -> bytes:
+        return hand_frame(samples, seq, stype=stype, flags=int(stamp is not None), timestamp=stamp)
+
+    def values(stype: int, n: int, nch: int) -> np.ndarray:
+        if stype == 3:
+            return rng.normal(0, 1e3, size=(n, nch)).astype(np.float32)
+        info = np.iinfo(DTYPES[stype])
+        return rng.integers(info.min, info.max, size=(n, nch), endpoint=True)
+
+    for _ in range(draw(st.integers(1, 6))):
+        # Runs often share a size with the one before (4 bytes a sample:
+        # int32 or float32), so that only one header field tells them apart.
+        stype = draw(st.sampled_from([1, 2, 3]))
+        n = draw(st.sampled_from([4, 4, 16]) | st.integers(1, 48))
+        nch = channels if draw(st.integers(0, 5)) else draw(st.integers(1, 4))  # now and then the wrong count
+        stamp = draw(st.none() | st.integers(0, 2**63))
+        for _ in range(draw(st.integers(1, 10))):
+            block = values(stype, n, nch)
+            whim = draw(st.sampled_from(["good"] * 12 + ["flip", "cut", "nan"]))
+            if whim == "nan" and stype == 3:
+                block[draw(st.integers(0, n - 1)), draw(st.integers(0, nch - 1))] = draw(
+                    st.sampled_from([np.nan, np.inf, -np.inf]))
+            data = frame(block, stype, stamp)
+            if whim == "flip":  # a bad CRC, or a damaged header or sync
+                damaged = bytearray(data)
+                bit = draw(st.integers(0, len(data) * 8 - 1))
+                damaged[bit // 8] ^= 1 << (bit % 8)
+                data = bytes(damaged)
+            elif whim == "cut":
+                data = data[: draw(st.integers(1, len(data) - 1))]
+            starts.append(len(pieces))
+            pieces.append(data)
+            seq = (seq + 1) % 2**32
+            if stamp is not None:
+                stamp += n
+        between = draw(st.sampled_from(["none"] * 4 + ["jump", "far", "back", "garbage", "sync"]))
+        if between == "jump":
+            seq = (seq + draw(st.integers(1, 5))) % 2**32
+        elif between == "far":  # beyond max_gap
+            seq = (seq + draw(st.integers(10**6, 2**31 - 1))) % 2**32
+        elif between == "back":
+            seq = (seq - draw(st.integers(1, 2**31))) % 2**32
+        elif between == "garbage":
+            pieces.append(draw(st.binary(min_size=1, max_size=60)))
+        elif between == "sync":  # a false header, in range or not
+            pieces.append(b"\xa7\x4d" + draw(st.binary(min_size=0, max_size=12)))
+    starts.append(len(pieces))
+    pieces.append(frame(values(1, draw(st.integers(1, 48)), channels), 1, None))
+    return channels, pieces, starts
+
+
+MAX_GAP = 1000
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@given(case=streams_of_runs(), whole=st.booleans(), data=st.data())
+def test_runs_decode_as_frame_by_frame(case, whole, data):
+    channels, pieces, starts = case
+    stream = b"".join(pieces)
+    want, want_counters = frame_by_frame(stream, channels, MAX_GAP)
+    decoder = make_decoder("frame", channels)
+    decoder.max_gap = MAX_GAP
+    if whole:
+        # Datagrams of whole frames: each begins where a frame begins.
+        cuts = sorted(set(data.draw(st.lists(st.sampled_from(starts), max_size=8))) | {0})
+        chunks = [b"".join(pieces[a:b]) for a, b in zip(cuts, cuts[1:] + [len(pieces)])]
+    else:
+        sizes = data.draw(st.lists(st.integers(1, 3000), max_size=20))
+        ends = np.cumsum([0] + sizes).tolist()
+        chunks = [stream[a:b] for a, b in zip(ends, ends[1:])] + [stream[ends[-1]:]]
+    got: List[Block] = []
+    for chunk in chunks:
+        got += decoder.feed(chunk, whole=whole)
+    assert all(b.samples.dtype == np.float64 and b.samples.shape[1] == channels for b in got)
+    assert len(got) <= len(want)
+    got_joined, want_joined = joined(got), joined(want)
+    assert len(got_joined) == len(want_joined)
+    for (samples, *rest), (want_samples, *want_rest) in zip(got_joined, want_joined):
+        assert np.array_equal(samples, want_samples)
+        assert rest == want_rest  # lost, restart, timestamp, full scale
+    assert decoder.counters == want_counters
+    assert decoder.buffered == 0
+
+
+def run_of(count: int, n: int = 4, seq: int = 0, stype: int = 1, stamp: Optional[int] = None) -> List[bytes]:
+    """`count` frames that follow on, one channel, values seq*100 + 0..n-1."""
+    return [hand_frame(np.arange(n)[:, None] + 100 * (seq + k), seq + k, stype=stype, flags=int(stamp is not None),
+                       timestamp=None if stamp is None else stamp + k * n) for k in range(count)]
+
+
+def test_a_run_of_good_frames_is_one_block():
+    # 0.2 s of a 3-channel 25.6 kS/s int16 stream: 10 frames of 512 samples
+    # (invented values), with timestamps 20 ms apart.
+    rng = np.random.default_rng(11)
+    values = [rng.integers(-2**15, 2**15, size=(512, 3)) for _ in range(10)]
+    stamp = 1_700_000_000_000_000
+    frames = [hand_frame(v, 7 + k, flags=1, timestamp=stamp + 20_000 * k) for k, v in enumerate(values)]
+    decoder = make_decoder("frame", 3)
+    (block,) = decoder.feed(b"".join(frames))
+    assert np.array_equal(block.samples, np.concatenate(values)) and block.samples.dtype == np.float64
+    assert (block.lost, block.restart, block.timestamp_us, block.full_scale) == (0, False, stamp, 32767.0)
+    assert decoder.counters["frames"] == 10 and decoder.buffered == 0
+    # Cut inside the fourth frame: the three whole ones are a block, and the
+    # held frame comes out with the six behind it once it is complete.
+    decoder = make_decoder("frame", 3)
+    stream = b"".join(frames)
+    cut = 3 * len(frames[0]) + 100
+    first, second = decoder.feed(stream[:cut]), decoder.feed(stream[cut:])
+    assert [(b.samples.shape[0], b.timestamp_us) for b in first + second] == [(3 * 512, stamp), (7 * 512, stamp + 60_000)]
+    assert np.array_equal(np.concatenate([first[0].samples, second[0].samples]), np.concatenate(values))
+
+
+@pytest.mark.parametrize("breaks", [[], [33], [34], [97], [98], [1, 2, 3], [200, 201], [40, 150, 260]])
+def test_long_runs_break_exactly_where_frames_stop_following_on(breaks):
+    # 300 frames: the decoder reads the headers of a long run in windows
+    # (32 frames, then twice as many each time); a break (a frame with a bad
+    # CRC) is put at the edges of those windows.
+    frames = run_of(300, n=1)
+    for k in breaks:
+        frames[k] = damaged_samples(frames[k])
+    stream = b"".join(frames)
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(stream)
+    want, counters = frame_by_frame(stream, 1, MAX_GAP)
+    # The stretches of intact frames: the first is one block; behind a
+    # damaged frame, the first intact one is a block alone, the rest one.
+    stretches = [len(s) for s in "".join("x" if k in breaks else "." for k in range(300)).split("x") if s]
+    sizes = stretches[:1] + [size for length in stretches[1:] for size in (1, length - 1) if size]
+    assert [b.samples.shape[0] for b in out] == sizes
+    assert len(joined(out)) == len(joined(want))
+    for (samples, *rest), (want_samples, *want_rest) in zip(joined(out), joined(want)):
+        assert np.array_equal(samples, want_samples) and rest == want_rest
+    assert decoder.counters == counters
+
+
+def test_each_frame_crc_is_computed_once(monkeypatch):
+    # A design rule of this decoder (frame.py's docstring): each candidate's
+    # CRC is checked once, a damaged frame right behind a run included.
+    import monitor.acquire.decoders.frame as frame_module
+
+    calls = []
+
+    class CountingZlib:
+        @staticmethod
+        def crc32(data):
+            calls.append(len(data))
+            return zlib.crc32(data)
+
+    monkeypatch.setattr(frame_module, "zlib", CountingZlib)
+    frames = run_of(16)
+    frames[10] = damaged_samples(frames[10])
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(b"".join(frames))
+    assert [b.samples.shape[0] for b in out] == [40, 4, 16]
+    assert len(calls) == 16
+
+
+def damaged_samples(frame: bytes) -> bytes:
+    """The frame with one bit of its first sample flipped: its CRC fails."""
+    return frame[:12] + bytes([frame[12] ^ 0x01]) + frame[13:]
+
+
+@pytest.mark.parametrize("irregular, sizes, lost, counts", [
+    # frame 5 of 10 (n = 4 samples each) breaks the run:
+    ("bad crc", [20, 4, 12], [0, 4, 0], {"corrupt_frames": 1, "gaps": 1}),  # its samples are lost; 6 comes alone
+    ("other n", [20, 3, 16], [0, 0, 0], {}),  # sequence unbroken: no loss
+    ("sequence jump", [20, 20], [0, 3 * 4], {"gaps": 1}),  # frames 5, 6, 7 missing
+    ("repeated", [20, 4, 16], [0, 1, 4], {"restarts": 1, "gaps": 1}),  # back to 4: restart; then 5 -> 6 is a gap
+    ("nan", [20, 16], [0, 4], {"nonfinite": 1}),
+    ("no timestamp", [20, 4, 16], [0, 0, 0], {}),
+])
+def test_a_run_ends_at_the_first_irregular_frame(irregular, sizes, lost, counts):
+    stype = 3 if irregular == "nan" else 1
+    frames = run_of(10, stype=stype, stamp=0)
+    if irregular == "bad crc":
+        frames[5] = damaged_samples(frames[5])
+    elif irregular == "other n":
+        frames[5] = run_of(1, n=3, seq=5, stamp=20)[0]
+    elif irregular == "sequence jump":
+        frames[5:] = run_of(5, seq=8, stamp=20)
+    elif irregular == "repeated":
+        frames[5] = run_of(1, seq=4, stamp=20)[0]
+    elif irregular == "nan":
+        frames[5] = hand_frame(np.array([[1.0], [np.nan], [2.0], [3.0]]), 5, stype=3, flags=1, timestamp=20)
+    elif irregular == "no timestamp":
+        frames[5] = run_of(1, seq=5)[0]
+    decoder = make_decoder("frame", 1)
+    out = decoder.feed(b"".join(frames))
+    assert [b.samples.shape[0] for b in out] == sizes
+    assert [b.lost for b in out] == lost
+    c = decoder.counters
+    assert c["frames"] == len(frames) - (irregular in ("bad crc", "nan"))
+    for name in ("corrupt_frames", "gaps", "restarts", "nonfinite"):
+        assert c[name] == counts.get(name, 0), name
+    if irregular == "bad crc":
+        assert c["corrupt_bytes"] == len(frames[5])  # its CRC checked once, its bytes counted once
 
 
 # ---------------------------------------------------------------- interface

@@ -207,7 +207,9 @@ def test_sequence_jumps_may_not_carry_stream_time_past_the_wall_clock(udp):
     wall = time.monotonic() - started
     assert [len(b.samples) for b in blocks] == [N, N]
     assert blocks[0].lost == 93 * N
-    assert 1 <= blocks[1].lost <= wall * RATE
+    # The clock's measure, rounded and at least 1 (the stream source's rule):
+    # the whole exchange can take under one sample's time.
+    assert 1 <= blocks[1].lost <= max(1, round(wall * RATE))
     counters = source.counters()
     assert (counters["gaps"], counters["lost_samples"], counters["restarts"]) == (1, 93 * N, 1)
     # Stream time (samples and lost samples) stays within the allowance.

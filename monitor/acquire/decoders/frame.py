@@ -25,12 +25,28 @@ frame cut short. It is dropped at once instead of stalling the stream until
 the bytes it claimed have arrived. Fed with `whole=True` (a UDP datagram, which
 holds whole frames) nothing is held: what is left at the end is dropped.
 
+Runs: a sensor sends frames back to back, and one read holds many. Behind a
+good frame with nothing skipped before it (the first of a chunk, or one
+right behind the frame taken last), the frames that follow on from it
+(complete, with the same header but for a sequence number one higher each)
+are taken with it as one Block: their headers are compared at once with
+numpy, through strided views of the buffer, each one's CRC is checked, and
+their samples are copied and converted once. The Block carries the first
+frame's timestamp. Nothing is lost between the frames of a run, so a gap, a
+restart, or another sample type, channel count, timestamp flag or n always
+starts a new Block. The first frame that does not follow on, or a float32
+frame holding NaN or infinity, ends the run and is taken or rejected on its
+own, as above. A good frame behind skipped bytes is taken alone: on hostile
+input it mostly is alone, and looking behind it would cost time there; a run
+that resumes after a damaged frame is found from its second frame on.
+
 Cost on hostile input: bytes are scanned for syncs once, each header is read
-once, and each candidate's CRC is checked once, when its last byte arrives;
-the CRCs of overlapping candidates share one pass over their bytes
-(spancrc.py). Many syncs at once are handled with numpy, a few with plain
-code. So time stays in proportion to the bytes fed, however the false
-headers nest (bench/acquisition.py measures it).
+once, bar those a run's check reads ahead (in windows that double: at most
+twice as many as the frames it takes, plus 32), and each candidate's CRC is
+checked once, when its last byte arrives; the CRCs of overlapping candidates
+share one pass over their bytes (spancrc.py). Many syncs at once are handled
+with numpy, a few with plain code. So time stays in proportion to the bytes
+fed, however the false headers nest (bench/acquisition.py measures it).
 
 Sequence numbers: the first frame after creation or `reset()` sets the
 expectation. A forward jump of k frames is a gap of k * n samples (n of the
@@ -87,6 +103,9 @@ for _flags in (0, FLAG_TIMESTAMP):
 _SMALL = 16
 _SPARSE = 256
 _LONG = 4096  # syncs in a longer run of garbage are counted with numpy (bytes.count slows on many)
+# Headers read at once when a run of frames starts (a TCP read of 0.2 s of a
+# 25.6 kS/s stream in 512-sample frames holds 10).
+_RUN_WINDOW = 32
 _EMPTY = np.zeros(0, dtype=np.int64)
 _NOWHERE = 1 << 62  # an end no buffer reaches
 
@@ -136,7 +155,8 @@ def _headers(buf: bytearray, start: int, stop: int) -> Tuple[np.ndarray, np.ndar
 
 
 class FrameDecoder(Decoder):
-    """Decodes a stream of version 1 frames into blocks, one per good frame."""
+    """Decodes a stream of version 1 frames into blocks, one per run of good
+    frames that follow on (a lone good frame is a run of one)."""
 
     def __init__(self, channels: int) -> None:
         super().__init__(channels)
@@ -166,6 +186,9 @@ class FrameDecoder(Decoder):
         self._open_at = _EMPTY
         self._open_end = _EMPTY
         self._next_end = _NOWHERE  # the first end of an open candidate
+        # A complete frame whose CRC `_run` found wrong, in this call: the
+        # scan rejects it without checking it again.
+        self._failed = -1
 
     def feed(self, data: bytes, whole: bool = False) -> List[Block]:
         buf = self._buf
@@ -180,12 +203,13 @@ class FrameDecoder(Decoder):
             self._seen = max(self._seen, scan_to)
             return []
         out: List[Block] = []
+        self._failed = -1
         pos = 0  # everything before has been taken or skipped
         with memoryview(buf) as view:
             # A held candidate gets its one CRC check when its last byte is here.
             if end >= self._next_end:
                 done = open_end <= end
-                pos = self._take(buf, self._verify(buf, view, open_at[done], open_end[done]), pos, out)
+                pos = self._take(buf, view, self._verify(buf, view, open_at[done], open_end[done]), pos, out, True)
                 open_at, open_end = open_at[~done], open_end[~done]
             start = max(self._seen, pos)
             if scan_to > start:
@@ -235,16 +259,16 @@ class FrameDecoder(Decoder):
                 if i - window < _SMALL * _SPARSE:
                     break  # dense syncs: the rest is read with numpy below
                 window, count = i, 1
-            size = _frame_size(*_HEAD.unpack_from(buf, i + 2)[:5])
+            head = _HEAD.unpack_from(buf, i + 2)
+            size = _frame_size(*head[:5])
             if size and i + size > end:
                 found_at.append(i)
                 found_end.append(i + size)
-            elif size and _crc_matches(buf, view, i, i + size):
+            elif size and i != self._failed and _crc_matches(buf, view, i, i + size):
                 if i > pos:
                     # Syncs before `start` were read in an earlier call (one may end at `start`).
                     self._skip(buf, pos, i, passed + (_count_syncs(buf, pos, start + 1) if pos < start else 0))
-                self._accept(buf, i, out)
-                pos = i + size
+                pos = self._accept(buf, view, i, size, head, out, i == pos)
                 passed = 0
                 i = buf.find(SYNC, pos, stop + 1)  # past the frame's body
                 continue
@@ -255,23 +279,26 @@ class FrameDecoder(Decoder):
         if i >= 0:
             more_at, more_end = _headers(buf, i, stop)
             now = more_end <= end
-            pos = self._take(buf, self._verify(buf, view, more_at[now], more_end[now]), pos, out)
+            # These frames' CRCs were all checked at once: taken one by one, no run.
+            pos = self._take(buf, view, self._verify(buf, view, more_at[now], more_end[now]), pos, out, False)
             at = np.concatenate((at, more_at[~now]))
             ends = np.concatenate((ends, more_end[~now]))
         return at, ends, pos
 
-    def _take(self, buf: bytearray, good: List[Tuple[int, int]], pos: int, out: List[Block]) -> int:
+    def _take(self, buf: bytearray, view: memoryview, good: List[Tuple[int, int]], pos: int,
+              out: List[Block], runs: bool) -> int:
         """Take these good frames (offset, end; ascending) that start at or
         after `pos`, and skip what lies before each: syncs with a header out
         of range or a bad CRC, and held headers whose claimed bytes hold the
-        good frame. Returns where the last frame taken ends."""
+        good frame. With `runs`, a frame with nothing skipped before it is
+        taken with the frames that continue it. Returns where the last frame
+        taken ends."""
         for at, stop in good:
             if at < pos:
-                continue  # starts inside the frame just taken
+                continue  # starts inside a frame just taken
             if at > pos:
                 self._skip(buf, pos, at)
-            self._accept(buf, at, out)
-            pos = stop
+            pos = self._accept(buf, view, at, stop - at, _HEAD.unpack_from(buf, at + 2), out, runs and at == pos)
         return pos
 
     def _skip(self, buf: bytearray, start: int, stop: int, syncs: Optional[int] = None) -> None:
@@ -291,9 +318,13 @@ class FrameDecoder(Decoder):
         good = span_crcs(view, at + 2, crc_at) == stored
         return list(zip(at[good].tolist(), stop[good].tolist()))
 
-    def _accept(self, buf: bytearray, i: int, out: List[Block]) -> None:
-        """Take the good frame at `i`: sequence bookkeeping, then deliver or drop."""
-        _version, stype, nch, flags, n, seq = _HEAD.unpack_from(buf, i + 2)
+    def _accept(self, buf: bytearray, view: memoryview, i: int, size: int, head: Tuple[int, ...], out: List[Block],
+                run: bool) -> int:
+        """Take the good frame at `i` (`size` bytes, `head` its header as
+        _HEAD reads it), with `run` the frames that continue it too (`_run`):
+        sequence bookkeeping, then deliver or drop. Returns where what was
+        taken ends."""
+        _version, stype, nch, flags, n, seq = head
         counters = self.counters
         lost = 0
         expected = self._expected
@@ -313,24 +344,83 @@ class FrameDecoder(Decoder):
         if nch != self.channels:
             counters["mismatched"] += 1
             self._pending_lost += lost + n
-            return
+            return i + size
         at = i + HEADER_SIZE
         timestamp = None
         if flags & FLAG_TIMESTAMP:
             timestamp = _U64.unpack_from(buf, at)[0]
             at += TIMESTAMP_SIZE
-        samples = np.frombuffer(buf, _TYPES[stype], n * nch, at).astype(np.float64).reshape(n, nch)
-        if stype == FLOAT32 and not np.isfinite(samples).all():
-            counters["nonfinite"] += 1
-            self._pending_lost += lost + n
-            return
-        counters["frames"] += 1
+        frames = 1
+        if run:
+            frames += self._run(buf, view, i, size, seq)
+        dtype = _TYPES[stype]
+        if frames == 1:
+            data = np.frombuffer(buf, dtype, n * nch, at)
+        else:  # one row per frame, through a strided view of the buffer
+            data = np.ndarray((frames, n * nch), dtype, buf, at, (size, dtype.itemsize))
+        if stype == FLOAT32 and not np.isfinite(data).all():
+            # The run ends before the first frame with NaN or infinity; that
+            # frame is dropped, the frames after it are left to the scan.
+            frames = int(np.isfinite(data).all(axis=1).argmin()) if frames > 1 else 0
+            if not frames:
+                counters["nonfinite"] += 1
+                self._pending_lost += lost + n
+                return i + size
+            data = data[:frames]
+        if frames > 1:
+            self._expected = (seq + frames) % _SEQ_MOD
+        counters["frames"] += frames
         lost += self._pending_lost
         restart = self._pending_restart
+        # The one copy out of the buffer, and the one conversion.
+        samples = data.astype(np.float64).reshape(-1, nch)
         out.append(Block(samples=samples, lost=max(lost, 1) if restart else lost, full_scale=_FULL_SCALE.get(stype),
                          timestamp_us=timestamp, restart=restart))
         self._pending_lost = 0
         self._pending_restart = False
+        return i + frames * size
+
+    def _run(self, buf: bytearray, view: memoryview, i: int, size: int, seq: int) -> int:
+        """How many frames right behind the good frame at `i` (`size` bytes,
+        sequence number `seq`) continue it: complete, back to back, with the
+        same first 8 header bytes (sync, version, type, channels, flags, n),
+        the next sequence numbers and a good CRC. Frame by frame they would
+        be taken one after the other with nothing lost between; here they
+        are checked at once."""
+        count = (len(buf) - i) // size - 1  # room for this many complete frames behind it
+        nxt = i + size
+        # The next frame alone in plain code first: behind a lone good frame
+        # (garbage, another shape, a damaged frame, the end of the chunk)
+        # numpy would cost more than it saves.
+        if (count < 1 or _U64.unpack_from(buf, nxt) != _U64.unpack_from(buf, i)
+                or _U32.unpack_from(buf, nxt + 8)[0] != (seq + 1) % _SEQ_MOD):
+            return 0
+        if not _crc_matches(buf, view, nxt, nxt + size):
+            self._failed = nxt  # the scan, which goes on there, rejects it
+            return 0
+        head = np.uint64(_U64.unpack_from(buf, i)[0])
+        taken = 1  # frames behind the one at `i` that continue it
+        window = _RUN_WINDOW
+        while taken < count:
+            # The next headers at once, through strided views of the buffer.
+            # The window doubles while the run goes on, so the work stays in
+            # proportion to the frames taken however often runs break.
+            m = min(window, count - taken)
+            at = nxt + taken * size
+            heads = np.ndarray((m,), "<u8", buf, at, (size,))
+            seqs = np.ndarray((m,), "<u4", buf, at + 8, (size,))
+            ok = (heads == head) & (seqs - np.uint32(seq) == np.arange(taken + 1, taken + 1 + m, dtype=np.uint32))
+            regular = m if ok.all() else int(ok.argmin())
+            for k in range(regular):
+                start = at + k * size
+                if not _crc_matches(buf, view, start, start + size):
+                    self._failed = start
+                    return taken + k
+            taken += regular
+            if regular < m:
+                break
+            window *= 2
+        return taken
 
 
 # Largest positive value of each integer sample type: samples there are clipped.
