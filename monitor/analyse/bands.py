@@ -42,10 +42,14 @@ def line_weights(lo: float, hi: float, bin_hz: float, lines: int) -> np.ndarray:
     return weights
 
 
-def _share(left: float, right: float, bin_hz: float) -> float:
-    """One line's share, (right - left) / bin_hz clipped to 0..1 exactly as
-    np.clip does it, on plain floats: cheaper for the few cut lines."""
-    share = (right - left) / bin_hz
+def _cut(left: float, right: float, lo: float, hi: float, bin_hz: float) -> float:
+    """The share of the line [left, right] inside [lo, hi], as line_weights
+    works it (max, min, then np.clip to 0..1), on plain floats: cheaper for
+    the few lines an edge cuts. Written out, the builtins' calls cost more
+    than the arithmetic."""
+    a = lo if lo > left else left  # max(left, lo)
+    b = hi if hi < right else right  # min(right, hi)
+    share = (b - a) / bin_hz
     if share != share:  # NaN passes through, as in np.clip
         return share
     share = share if share > 0.0 else 0.0
@@ -94,6 +98,9 @@ def lobe_correction(p: int, spread: Tuple[float, float], lines: int) -> np.ndarr
     return np.maximum(1.0 - a * u + b * u**2, 0.0)
 
 
+_new_tuple = tuple.__new__
+
+
 class BandValue(NamedTuple):
     """One band's value on one channel (a tuple: made every hop, kept cheap)."""
 
@@ -139,21 +146,31 @@ class BandBank:
         whole = np.clip(((k + 0.5) * bin_hz - (k - 0.5) * bin_hz) / bin_hz, 0.0, 1.0)
         self._inner = {q: whole * f for q, f in self._factors.items()}
         self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
-        # One group per band: its channels' rows, its weights if its edges
-        # are fixed (order bands follow the speed), and the labels of its values.
-        self._groups: List[Tuple[BandConfig, Any, Optional[Tuple[int, np.ndarray]], List[Tuple[str, ...]]]] = []
+        # Both again as plain floats: an order band's few lines are put
+        # together in a list, cheaper than numpy's calls on a dozen numbers.
+        self._factor_lists = {q: f.tolist() for q, f in self._factors.items()}
+        self._inner_lists = {q: w.tolist() for q, w in self._inner.items()}
+        # One group per band, with all that does not change between hops: the
+        # spectrum it reads, its channels' rows (a slice where they run in
+        # order), the labels of its values, and for a band with fixed edges
+        # its first line, weights and edges (order bands follow the speed).
+        self._groups: List[Tuple[str, Any, List[Tuple[str, ...]], BandConfig,
+                                 Optional[Tuple[int, np.ndarray, Tuple[float, float]]]]] = []
         rows: List[int] = []
         for i, (band, ch) in enumerate(self.pairs):
-            if not self._groups or self._groups[-1][0] is not band:
-                fixed = self._weights(band, band.hz) if band.hz is not None else None
+            if not self._groups or self._groups[-1][3] is not band:
+                fixed = (*self._weights(band, band.hz), band.hz) if band.hz is not None else None
                 rows = []
-                self._groups.append((band, rows, fixed, []))
+                self._groups.append((band.spectrum, rows, [], band, fixed))
             rows.append(ch)
-            self._groups[-1][3].append((band.name, self.channels[ch], band.quantity, self._units[i]))
+            self._groups[-1][2].append((band.name, self.channels[ch], band.quantity, self._units[i]))
         # Channels that run 0..k-1 in order are read as a slice, not a copy.
-        for n, (band, rows, fixed, labels) in enumerate(self._groups):
+        for n, (spectrum, rows, labels, band, fixed) in enumerate(self._groups):
             if rows == list(range(rows[0], rows[0] + len(rows))):
-                self._groups[n] = (band, slice(rows[0], rows[0] + len(rows)), fixed, labels)
+                self._groups[n] = (spectrum, slice(rows[0], rows[0] + len(rows)), labels, band, fixed)
+        # Each order band's last edges and weights: a speed that holds (nominal,
+        # or tracked and unchanged) reuses them.
+        self._last: Dict[int, Tuple[Tuple[float, float], Tuple[int, np.ndarray]]] = {}
         top = min(ISO_VELOCITY_HZ[1], bin_hz * (lines - 1))
         self._velocity = quantity_factors("velocity", unit, bin_hz, lines, window.spread) * line_weights(
             ISO_VELOCITY_HZ[0], top, bin_hz, lines
@@ -168,25 +185,25 @@ class BandBank:
         last = min(self.lines - 1, math.ceil(hi / df + 0.5))
         if last < first:
             return first, np.zeros(0)
-        weights = self._inner[band.quantity][first : last + 1].copy()
-        factors = self._factors[band.quantity]
-        # Lines wholly inside the edges form one run, whose values the copy
-        # holds; the lines an edge cuts are at its ends: walk in from both.
+        weights = self._inner_lists[band.quantity][first : last + 1]
+        factors = self._factor_lists[band.quantity]
+        # Lines wholly inside the edges form one run, whose values the copied
+        # slice holds; the lines an edge cuts are at its ends: walk in from both.
         k = first
         while k <= last:
             left, right = (k - 0.5) * df, (k + 0.5) * df
             if lo <= left and right <= hi:
                 break
-            weights[k - first] = _share(max(left, lo), min(right, hi), df) * factors[k]
+            weights[k - first] = _cut(left, right, lo, hi, df) * factors[k]
             k += 1
         j = last
         while j > k:
             left, right = (j - 0.5) * df, (j + 0.5) * df
             if lo <= left and right <= hi:
                 break
-            weights[j - first] = _share(max(left, lo), min(right, hi), df) * factors[j]
+            weights[j - first] = _cut(left, right, lo, hi, df) * factors[j]
             j -= 1
-        return first, weights
+        return first, np.array(weights)
 
     def evaluate(self, spectra: Union[Spectrum, Mapping[str, Spectrum]],
                  speed_hz: Optional[float]) -> List[BandValue]:
@@ -196,13 +213,23 @@ class BandBank:
         if isinstance(spectra, Spectrum):
             spectra = {"raw": spectra}
         out: List[BandValue] = []
-        for band, rows, fixed, labels in self._groups:
+        df = self.bin_hz
+        for spectrum, rows, labels, band, fixed in self._groups:
+            if fixed is None:
+                edges = band.edges_hz(speed_hz)
+                last = self._last.get(id(band))
+                if last is not None and last[0] == edges:
+                    first, w = last[1]
+                else:
+                    first, w = self._weights(band, edges)
+                    self._last[id(band)] = (edges, (first, w))
+            else:
+                first, w, edges = fixed
             # One band's weights serve all its channels: one product per band.
-            edges = band.edges_hz(speed_hz)
-            first, w = fixed or self._weights(band, edges)
-            psd = spectra[band.spectrum].psd[rows, first : first + len(w)]
+            psd = spectra[spectrum].psd[rows, first : first + len(w)]
             for label, power in zip(labels, (psd @ w).tolist()):
-                out.append(BandValue(*label, _root(power * self.bin_hz), edges))
+                # A BandValue made as its own __new__ makes it, minus the call.
+                out.append(_new_tuple(BandValue, (*label, _root(power * df), edges)))
         return out
 
     def velocity_rms(self, spectrum: Spectrum) -> np.ndarray:

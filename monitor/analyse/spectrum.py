@@ -72,6 +72,8 @@ class SpectralStage:
         self._filled = 0
         self._next = 0
         self._frame = np.zeros((channels, size))
+        self._mean = np.zeros((channels, 1))
+        self._window = self.window.samples
         # The transform writes into one buffer kept for the stage where numpy
         # takes `out` (2.0 and later): no fresh 16-byte-per-line result and
         # its page faults every hop. Older numpy allocates it each time.
@@ -95,10 +97,10 @@ class SpectralStage:
         `averages` frames are in."""
         # Means as ndarray.mean takes them (np.add.reduce, then a divide), so
         # the numbers are the same, without its Python wrapper: every hop.
-        mean = np.add.reduce(frame, axis=1, keepdims=True)
-        mean /= self.size
+        mean = np.add.reduce(frame, axis=1, keepdims=True, out=self._mean)
+        np.divide(mean, self.size, out=mean)
         np.subtract(frame, mean, out=self._frame)
-        self._frame *= self.window.samples
+        np.multiply(self._frame, self._window, out=self._frame)
         if self._spectrum is not None:
             spectrum = np.fft.rfft(self._frame, axis=1, out=self._spectrum)
         else:
@@ -109,17 +111,15 @@ class SpectralStage:
         np.square(parts, out=parts)
         power = self._ring[self._next]
         np.add(parts[:, 0::2], parts[:, 1::2], out=power)
-        power *= self._scale
+        np.multiply(power, self._scale, out=power)
         self._next = (self._next + 1) % self.averages
-        self._filled = min(self._filled + 1, self.averages)
-        if not self.ready:
-            return None
-        # The mean over the ring likewise: the slots added in order into a
-        # fresh array, then divided, as ndarray.mean does, minus its first
-        # pass (a copy of slot 0).
-        ring = self._ring
-        psd = ring[0] + ring[1] if self.averages > 1 else ring[0].copy()
-        for slot in ring[2:]:
-            psd += slot
-        psd /= self.averages
+        if self._filled < self.averages:
+            self._filled += 1
+            if self._filled < self.averages:
+                return None
+        # The mean over the ring as ndarray.mean takes it: np.add.reduce over
+        # the slots (slot 0, then each further slot added in order, into a
+        # fresh array), then divided.
+        psd = np.add.reduce(self._ring, axis=0)
+        np.divide(psd, self.averages, out=psd)
         return Spectrum(psd, self.bin_hz, self.enbw_hz, self.window)

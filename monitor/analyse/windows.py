@@ -9,6 +9,7 @@ and a table that turns the ratio of two adjacent bin magnitudes into the
 tone's offset from the larger bin.
 """
 
+from bisect import bisect_right
 from functools import lru_cache
 from typing import Dict, Tuple
 
@@ -59,6 +60,9 @@ class Window:
         self.main_lobe = MAIN_LOBE_BINS[name]
         self.spread = _spread(self.coefficients)
         self._ratio_offsets, self._ratios, self._gains = _ratio_table(name, size)
+        # The same table as plain floats, for reading one ratio at a time.
+        self._ratio_list = self._ratios.tolist()
+        self._offset_list = self._ratio_offsets.tolist()
 
     def kernel(self, offset_bins: np.ndarray) -> np.ndarray:
         """|W(offset)| / W(0): the window's response to a tone `offset` bins away."""
@@ -68,6 +72,26 @@ class Window:
         """Tone offset (0..0.5 bin) toward the larger neighbour, from
         ratio = |X[k+-1]| / |X[k]| of the peak bin k and that neighbour."""
         return np.interp(ratio, self._ratios, self._ratio_offsets)
+
+    def offset_at(self, ratio: float) -> float:
+        """`offset_from_ratio` of one plain float, worked as np.interp works
+        it (the same interval, slope and operations, so the same number),
+        without numpy's cost per call: the speed tracker reads one a hop."""
+        xs, ys = self._ratio_list, self._offset_list
+        if ratio != ratio:
+            return ratio
+        j = bisect_right(xs, ratio) - 1  # xs[j] <= ratio < xs[j + 1]
+        if j < 0:
+            return ys[0]
+        if j >= len(xs) - 1 or xs[j] == ratio:
+            return ys[j]
+        slope = (ys[j + 1] - ys[j]) / (xs[j + 1] - xs[j])
+        offset = slope * (ratio - xs[j]) + ys[j]
+        if offset != offset:  # np.interp's second try, from the right end
+            offset = slope * (ratio - xs[j + 1]) + ys[j + 1]
+            if offset != offset and ys[j] == ys[j + 1]:
+                offset = ys[j]
+        return offset
 
     def gain_at(self, offset: np.ndarray) -> np.ndarray:
         """`kernel` for offsets in 0..0.5 bin, read from the table built once."""

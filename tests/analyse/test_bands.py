@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from monitor.analyse.bands import BandBank, line_weights
+from monitor.analyse.bands import BandBank, line_weights, quantity_factors
 from monitor.analyse.units import STANDARD_GRAVITY
 from monitor.config import BandConfig
 from monitor.analyse.spectrum import SpectralStage, Spectrum
@@ -162,6 +162,30 @@ def test_order_band_follows_speed():
     assert b.evaluate(spec, 50.0)[0].value == pytest.approx(1.0, rel=1e-4)
     assert b.evaluate(spec, 25.0)[0].value < 1e-3  # edges 20..30 Hz miss the tone
     assert b.evaluate(spec, 50.0)[0].edges_hz == (40.0, 60.0)
+
+
+@pytest.mark.parametrize("quantity", ["acceleration", "velocity", "displacement"])
+def test_order_band_weights_are_the_edge_rule_times_the_factors(quantity):
+    # Reference: line_weights, the edge rule written with numpy over every
+    # line (tested above against hand-worked weights), times the quantity's
+    # factors. The few lines an order band touches, worked out in plain
+    # floats at each speed, are exactly those numbers; the band's value is
+    # that full-length product to rounding.
+    ob = BandConfig(name="1x", channels=("x", "y"), quantity=quantity, orders=(0.8, 1.2))
+    b = bank([ob], channels=("x", "y"))
+    df, lines = FS / SIZE, SIZE // 2 + 1
+    full_factors = quantity_factors(quantity, "m/s2", df, lines, Window("hann", SIZE).spread)
+    spec = spectrum_of(np.vstack([tone(50.0, 1.0), tone(61.3, 0.5)]))
+    rng = np.random.default_rng(7)
+    speeds = [25.0, 31.25, 30.625, 50.0, 50.0, 12.3] + list(rng.uniform(1.0, 2000.0, 200)) + [3000.0, 25.0]
+    for speed in speeds:
+        lo, hi = 0.8 * speed, 1.2 * speed
+        reference = line_weights(lo, hi, df, lines) * full_factors
+        first, w = b._weights(ob, (lo, hi))
+        assert np.array_equal(w, reference[first : first + len(w)])
+        assert not reference[:first].any() and not reference[first + len(w) :].any()
+        values = [v.value for v in b.evaluate(spec, speed)]
+        assert values == pytest.approx(np.sqrt(spec.psd @ reference * df), rel=1e-12, abs=1e-300)
 
 
 def test_the_issue_case_one_g_at_10_lines():

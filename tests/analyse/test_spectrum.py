@@ -92,3 +92,33 @@ def test_reset_forgets_frames():
 def test_size_must_be_a_power_of_two():
     with pytest.raises(ValueError, match="size=1000"):
         SpectralStage(100.0, 1000, "hann", 1, 1)
+
+
+@pytest.mark.parametrize("averages", [1, 3, 4])
+def test_the_average_is_numpys_mean_of_the_frames_power_exactly(averages):
+    # Reference: numpy itself, term by term (ndarray.mean for the mean removal
+    # and for the average, np.fft.rfft, |X|^2 as re^2 + im^2, welch's density
+    # scale): the stage gives the very same numbers, not just close ones,
+    # through a non-contiguous frame as the sample ring hands it over.
+    fs, size, hop = 5120.0, 1024, 384
+    rng = np.random.default_rng(averages)
+    x = rng.normal(size=(2, size + (averages + 2) * hop)) * np.array([[1e-3], [40.0]]) + 0.7
+    stage = SpectralStage(fs, size, "hann", averages, 2)
+    w = scipy.signal.get_window("hann", size, fftbins=True)
+    scale = np.full(size // 2 + 1, 2.0 / (fs * np.dot(stage.window.samples, stage.window.samples)))
+    scale[0] /= 2.0
+    scale[-1] /= 2.0
+    powers = []
+    for i in range(averages + 3):
+        frame = x[:, i * hop : i * hop + size]
+        got = stage.push(frame)
+        spectrum = np.fft.rfft((frame - frame.mean(axis=1, keepdims=True)) * stage.window.samples, axis=1)
+        powers = (powers + [(spectrum.real**2 + spectrum.imag**2) * scale])[-averages:]
+        if i + 1 < averages:
+            assert got is None
+            continue
+        # The stage keeps frame f in slot f % averages and adds the slots in
+        # that order (this project's choice): the mean below takes them so.
+        slots = [powers[(k - (i + 1)) % averages] for k in range(averages)]
+        assert np.array_equal(got.psd, np.array(slots).mean(axis=0))
+    assert np.max(np.abs(stage.window.samples - w)) < 1e-12  # the window is scipy's

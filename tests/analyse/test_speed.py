@@ -6,7 +6,7 @@ import pytest
 
 from monitor.config import SpeedConfig
 from monitor.analyse.spectrum import SpectralStage
-from monitor.analyse.speed import SpeedTracker
+from monitor.analyse.speed import SpeedTracker, _long_range, _short_range
 
 FS, SIZE = 2560.0, 4096
 
@@ -114,3 +114,24 @@ def test_the_speed_is_stamped_at_the_middle_of_the_spectrum():
     assert tr.measured_s == 12.5
     tr.update(spectrum(signal(noise=1.0)), centre_s=13.0)  # no clear peak: held
     assert not tr.locked and tr.measured_s == 12.5
+
+
+@pytest.mark.parametrize("channels", [1, 2, 3])
+def test_both_readings_of_the_range_are_numpys(channels):
+    # Reference: numpy. The search range is summed over channels as
+    # ndarray.sum(axis=0) sums it, its strongest line is np.argmax's (the
+    # first of equal ones) and its floor the middle value of np.sort (the
+    # upper of the two middle ones for an even count), whether read as plain
+    # floats (narrow ranges) or with numpy (wide ones); ties included.
+    rng = np.random.default_rng(channels)
+    for n in list(range(3, 40)) * 8:
+        psd = rng.choice([0.0, 1.0, 2.5, 7.0], size=(channels, n + 10)) if n % 2 else rng.random((channels, n + 10)) ** 4
+        block = psd[:, 4 : n + 4]  # a slice of the spectrum, as update reads it
+        total = block.sum(axis=0)
+        inner = total[1:-1]
+        for part, j, floor in (_short_range(block), _long_range(block)):
+            assert np.array_equal(np.asarray(part), total)
+            assert j == int(np.argmax(inner))
+            assert floor == np.sort(inner)[len(inner) // 2]
+    block = np.array([[1.0, 2.0, np.nan, 0.5]] * channels)
+    assert _short_range(block) is None  # NaN: numpy decides

@@ -111,3 +111,18 @@ def test_spread_is_the_moments_of_the_power_response(name):
         # By hand: power 1/4 on the line, 1/16 a line either side, so
         # m2 = m4 = (2/16) / (6/16) = 1/3.
         assert Window(name, 1024).spread == pytest.approx((1 / 3, 1 / 3), abs=1e-12)
+
+
+@pytest.mark.parametrize("name", sorted(SCIPY_NAMES))
+def test_one_ratio_read_as_np_interp_reads_it(name):
+    # Reference: np.interp on the same table. The plain-float reading the
+    # speed tracker uses gives the very same number: between the table's
+    # points, on them, just off them, outside the table and for NaN.
+    w = Window(name, 4096)
+    table = w._ratios
+    rng = np.random.default_rng(3)
+    ratios = np.concatenate([rng.uniform(-0.1, 1.2, 5000), table, np.nextafter(table, 2.0), np.nextafter(table, -1.0),
+                             [0.0, 1.0, np.inf, -np.inf, np.nan]])
+    expected = np.interp(ratios, table, w._ratio_offsets)
+    got = np.array([w.offset_at(r) for r in ratios.tolist()])
+    assert np.array_equal(got, expected, equal_nan=True)
