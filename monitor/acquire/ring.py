@@ -42,7 +42,10 @@ class Ring:
             raise ValueError(f"block of {n=} samples exceeds the ring's {self.capacity=}")
         if self._end + n > self._buf.shape[1]:
             keep = min(self.count, self.capacity - n)
-            self._buf[:, :keep] = self._buf[:, self._end - keep : self._end]
+            # Row by row: two column ranges of one 2-D buffer look
+            # overlapping to numpy, which would copy the source aside first.
+            for row in self._buf:
+                row[:keep] = row[self._end - keep : self._end]
             self._end = keep
         kept = self._buf[:, self._end : self._end + n]
         kept[...] = samples.T

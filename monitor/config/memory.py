@@ -6,7 +6,7 @@ over the budget with the parts named, instead of a board that swaps, an
 out-of-memory kill, or an allocation error at start. The sizes are upper
 bounds of what each part holds once full (the capture ring, for one, is
 touched gradually as it fills); `PROGRAM_MIB` stands for the interpreter,
-numpy, paho-mqtt and SQLite's page cache (about 46 MiB measured on the
+numpy, paho-mqtt and SQLite's page cache (about 42 MiB measured on the
 development machine, rounded up).
 """
 
