@@ -134,6 +134,9 @@ class Health:
         self._last_row: Optional[List[float]] = None
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
         self._top_line: Optional[int] = None
+        # The psd's lines summed for the nyquist share, set with _top_line.
+        self._top_lines: Tuple[slice, slice] = (slice(None), slice(None))
+        self._lower_lines: Tuple[slice, slice] = (slice(None), slice(None))
 
     @staticmethod
     def _update(check: Check, value: Optional[float], t: float, out: List[Change]) -> None:
@@ -184,14 +187,19 @@ class Health:
         out: List[Change] = []
         self._unmeasured = 0
         self._update(self.blind, 0.0, t, out)
+        psd = spectrum.psd
         if self._top_line is None:
-            lines = spectrum.psd.shape[1]
+            lines = psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.
             self._top_line = int(np.ceil((1.0 - NYQUIST_TOP_SHARE) * (lines - 1)))
-        # np.add.reduce is what ndarray.sum calls, without its wrapper: every hop.
-        top = np.add.reduce(spectrum.psd[:, self._top_line :], axis=1)
-        total = np.add.reduce(spectrum.psd[:, 1 : self._top_line], axis=1) + top
-        for check, top_i, total_i in zip(self.nyquist, top.tolist(), total.tolist()):
+            self._top_lines = (slice(None), slice(self._top_line, None))
+            self._lower_lines = (slice(None), slice(1, self._top_line))  # above DC
+        # np.add.reduce is what ndarray.sum calls, without its wrapper: every
+        # hop. The few per-channel sums are added as plain floats.
+        top = np.add.reduce(psd[self._top_lines], axis=1).tolist()
+        lower = np.add.reduce(psd[self._lower_lines], axis=1).tolist()
+        for check, top_i, lower_i in zip(self.nyquist, top, lower):
+            total_i = lower_i + top_i
             self._update(check, top_i / total_i if total_i > 0 else None, t, out)
         return out
 
