@@ -117,6 +117,7 @@ class Health:
         self._unmeasured = 0  # samples received since the last result
         self._dropped_seen = 0  # the sink's loss total when last seen
         self._lost = 0  # events lost since the queue fault was raised
+        self._delivery_quiet: Optional[Tuple[int, int, int, bool]] = None  # on_delivery's skip
         self._refused = 0.0  # the config check's value, fed on with every block
         # Totals for what sources do not count themselves: samples, breaks,
         # and per channel the clipped and the implausible samples.
@@ -216,9 +217,12 @@ class Health:
         carries in `value` how many were lost meanwhile, so the count reaches
         consumers with the all-clear."""
         out: List[Change] = []
+        check = self.queue
+        seen = (dropped, queued, held, refused)
+        if seen == self._delivery_quiet and check.rule.index == 0:
+            return out  # as the last call, which changed nothing: nothing can change
         self._lost += dropped - self._dropped_seen
         self._dropped_seen = dropped
-        check = self.queue
         at_risk = refused or held > 0
         if check.rule.level == "normal":
             bad = at_risk or self._lost > 0
@@ -230,6 +234,9 @@ class Health:
             out.append((check, change))
             if not bad:
                 self._lost = 0  # reported with the all-clear; a new count starts
+        # Normal and unchanged: the same values again give the same result
+        # (a loss or a held event raises the fault at once, with no delay).
+        self._delivery_quiet = seen if not change and check.rule.index == 0 else None
         return out
 
     def on_config(self, refused: bool, t: float) -> List[Change]:
