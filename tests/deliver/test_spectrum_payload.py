@@ -99,6 +99,34 @@ def test_lines_are_written_as_pythons_4_significant_digit_rounding():
     assert json.loads(Lines(np.array([np.nan, np.inf, 1.0])).json()) == [None, None, 1.0]
 
 
+def _short(value):
+    """Python's "%.4g" text of `value`, written as short as JSON allows
+    (README, the spectrum message: 1.234e-5, not 1.234e-05; 1.2e-4, not
+    0.00012): the short forms are this project's choice."""
+    text = f"{value:.4g}"
+    sign, body = ("-", text[1:]) if text.startswith("-") else ("", text)
+    if body.startswith("0.000"):
+        digits = body[5:]
+        body = f"{digits[0]}.{digits[1:]}e-4" if len(digits) > 1 else f"{digits}e-4"
+    mantissa, _, exponent = body.partition("e")
+    return sign + mantissa + (f"e{int(exponent)}" if exponent else "")
+
+
+def test_lines_at_rounding_ties_of_the_fourth_digit_are_pythons_rounding():
+    # Reference: Python's own "%.4g" (the exact binary value rounded to 4
+    # digits), at and beside the halfway points of the 1e-4 decade, where
+    # most lines of a spectrum in g lie, and in a row that also holds
+    # numbers near 1e300.
+    k = np.arange(1000.0, 10000.0, 3.0)
+    ties = (k + 0.5) * 1e-7
+    values = np.concatenate([ties, np.nextafter(ties, 0.0), np.nextafter(ties, 1.0), -ties, k * 1e-7,
+                             [9.9995e-5, 9.9994e-5, 9.9995e-4, 9.9994e-4, 1e-4, -1e-4]])
+    for row in (values, np.append(values, [1.234e300, -5e300, 1e-300])):
+        text = Lines(row).json()
+        assert text == "[" + ",".join(_short(v) for v in row.tolist()) + "]"
+        assert json.loads(text) == [float(f"{v:.4g}") for v in row.tolist()]
+
+
 def test_a_3_channel_4096_point_spectrum_stays_under_64_kB():
     # An invented 3-axis sensor in g: tones and broadband noise at levels an
     # industrial accelerometer sees (1e-4 to 1e-1 g per line), all 2049 lines.
