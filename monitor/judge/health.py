@@ -334,8 +334,9 @@ class Health:
         self._update(self.rate, abs(measured / self.fs - 1.0), t, out)
 
     def implausible_channels(self) -> List[int]:
-        """Indices of the channels whose `implausible` check is in fault."""
-        return [i for i, check in enumerate(self.implausible) if check.rule.level == "fault"]
+        """Indices of the channels whose `implausible` check is in fault
+        (its one level above normal): asked at every result."""
+        return [i for i, check in enumerate(self.implausible) if check.rule.index]
 
     def rows(self) -> List[Dict[str, object]]:
         """name, channel, level and value of every check, for `levels`."""
