@@ -63,40 +63,60 @@ class Lines:
 
     def json(self) -> str:
         values = self.values
-        shown, stand_ins = values, False
-        # %g writes 1e-4 .. 1e-3 positionally (0.0001234); 1.234e-4 is a
-        # byte shorter. Many lines of a vibration spectrum in g lie there:
-        # each is written through a stand-in, its four digits times 1e297,
-        # which %g writes as 1.234e+300, taken for e-4 below. The digits are
-        # those %g rounds to (its exact decimal value, rounded half to
-        # even), except within 1e-9 of a tie, which is left to %g; so is a
-        # row that holds numbers of 1e300 themselves.
-        size = np.abs(values)
-        with np.errstate(all="ignore"):  # inf and nan are written as null below
-            scaled = size * 1e7
+        # A line's text depends only on its decade and its four digits, so
+        # most lines are looked up in a table per decade instead of being
+        # formatted: the digits are those %g rounds to (the exact binary
+        # value, rounded half to even) wherever they are more than 1e-9 of a
+        # digit from a tie; the rest (ties, the edges of a decade, zero,
+        # negative, huge, tiny or non-finite values) are formatted.
+        with np.errstate(all="ignore"):  # log10 of 0, negatives, nan and inf
+            decade = np.floor(np.log10(values))
+            known = (decade >= _TABLE_DECADES[0]) & (decade <= _TABLE_DECADES[-1])
+            decade = np.where(known, decade, 0.0).astype(np.intp)
+            scaled = values * _TO_DIGITS[decade - _TABLE_DECADES[0]]  # exact powers of ten
             digits = np.rint(scaled)
-            decade = (size >= 1.0001e-4) & (size < 9.999e-4) & (np.abs(scaled - digits) < 0.5 - 1e-9)
-            if decade.any() and not ((size >= 9.99e299) & (size < 1.01e301)).any():
-                shown, stand_ins = np.where(decade, np.copysign(digits, values) * 1e297, values), True
-        # One %-format of the whole row, in C: no Python step per number.
-        text = _row_format(len(values)) % tuple(shown.tolist())
-        if stand_ins:
-            text = text.replace("e+300", "e-04")
-        if "0.000" in text:
-            # The few left to %g (it drops trailing zeros, so "0.000" only
-            # ever starts a number).
-            text = _DECADE.sub(_exponent_form, text)
-        # %g's exponent has a sign and at least two digits: e-05 -> e-5, e+04 -> e4.
-        text = text.replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
-        if not np.isfinite(values).all():
-            text = text.replace("-inf", "null").replace("inf", "null").replace("nan", "null")
-        return "[" + text + "]"
+            looked_up = known & (scaled >= 1000.1) & (scaled < 9999.0) & (np.abs(scaled - digits) < 0.5 - 1e-9)
+        if not looked_up.any():
+            return "[" + _formatted(values) + "]"
+        texts = np.empty(len(values), dtype=object)
+        where = np.flatnonzero(looked_up)
+        decades = decade[where]
+        digits = digits[where].astype(np.intp) - 1000
+        for exponent in np.unique(decades).tolist():
+            mine = decades == exponent
+            texts[where[mine]] = _decade_texts(exponent)[digits[mine]]
+        others = ~looked_up
+        if others.any():
+            texts[others] = _formatted(values[others]).encode("ascii").split(b",")
+        return "[" + b",".join(texts.tolist()).decode("ascii") + "]"
 
 
-@functools.lru_cache(maxsize=8)
-def _row_format(n: int) -> str:
-    """The %-format of a row of n numbers (a spectrum's rows have one length)."""
-    return ",".join(["%.4g"] * n)
+# Decades with a table of texts (at most 9000 x 8 bytes each, made on first
+# use): 1e-9 .. 1e3, where 1000 ... 9999 times the decade's 1e-3 is exact.
+_TABLE_DECADES = range(-9, 4)
+_TO_DIGITS = np.array([float(10 ** (3 - e)) for e in _TABLE_DECADES])
+
+
+@functools.lru_cache(maxsize=None)
+def _decade_texts(exponent: int) -> np.ndarray:
+    """The texts of 1.000 ... 9.999 times 10**exponent, as `_formatted`
+    writes them (ASCII bytes), indexed by the four digits less 1000."""
+    numbers = np.arange(1000, 10000, dtype=float) / float(10 ** (3 - exponent))  # correctly rounded
+    return np.array(_formatted(numbers).encode("ascii").split(b","))
+
+
+def _formatted(values: np.ndarray) -> str:
+    """The numbers' texts, comma-separated: one %-format in C."""
+    text = ",".join(["%.4g"] * len(values)) % tuple(values.tolist())
+    # %g writes 1e-4 .. 1e-3 positionally (0.0001234); 1.234e-4 is a byte
+    # shorter. %g drops trailing zeros, so "0.000" only ever starts a number.
+    if "0.000" in text:
+        text = _DECADE.sub(_exponent_form, text)
+    # %g's exponent has a sign and at least two digits: e-05 -> e-5, e+04 -> e4.
+    text = text.replace("e+0", "e").replace("e+", "e").replace("e-0", "e-")
+    if not np.isfinite(values).all():
+        text = text.replace("-inf", "null").replace("inf", "null").replace("nan", "null")
+    return text
 
 
 _DECADE = re.compile(r"0\.000([1-9])([0-9]*)")

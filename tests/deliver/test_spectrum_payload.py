@@ -112,19 +112,24 @@ def _short(value):
     return sign + mantissa + (f"e{int(exponent)}" if exponent else "")
 
 
-def test_lines_at_rounding_ties_of_the_fourth_digit_are_pythons_rounding():
+def test_lines_at_rounding_ties_and_decade_edges_are_pythons_rounding():
     # Reference: Python's own "%.4g" (the exact binary value rounded to 4
-    # digits), at and beside the halfway points of the 1e-4 decade, where
-    # most lines of a spectrum in g lie, and in a row that also holds
-    # numbers near 1e300.
-    k = np.arange(1000.0, 10000.0, 3.0)
-    ties = (k + 0.5) * 1e-7
-    values = np.concatenate([ties, np.nextafter(ties, 0.0), np.nextafter(ties, 1.0), -ties, k * 1e-7,
-                             [9.9995e-5, 9.9994e-5, 9.9995e-4, 9.9994e-4, 1e-4, -1e-4]])
-    for row in (values, np.append(values, [1.234e300, -5e300, 1e-300])):
-        text = Lines(row).json()
-        assert text == "[" + ",".join(_short(v) for v in row.tolist()) + "]"
-        assert json.loads(text) == [float(f"{v:.4g}") for v in row.tolist()]
+    # digits), at and beside the halfway points of the fourth digit and at
+    # and beside the powers of ten, in every decade from 1e-12 to 1e6.
+    k = np.arange(1000.0, 10000.0, 7.0)
+    rows = []
+    for exponent in range(-12, 7):
+        unit = 10.0 ** (exponent - 3)
+        ties = (k + 0.5) * unit
+        power = 10.0 ** exponent
+        rows.append(np.concatenate([ties, np.nextafter(ties, 0.0), np.nextafter(ties, 1.0), k * unit,
+                                    [power, np.nextafter(power, 0.0), np.nextafter(power, 1.0),
+                                     9.9995 * power, 9.9994 * power, 9.9996 * power]]))
+    row = np.concatenate(rows)
+    row = np.concatenate([row, -row[::5], [0.0, -0.0, 1e300, 5e-324, np.nan, np.inf, -np.inf]])
+    text = Lines(row).json()
+    assert text == "[" + ",".join("null" if not np.isfinite(v) else _short(v) for v in row.tolist()) + "]"
+    assert json.loads(text) == [float(f"{v:.4g}") if np.isfinite(v) else None for v in row.tolist()]
 
 
 def test_a_3_channel_4096_point_spectrum_stays_under_64_kB():
