@@ -99,10 +99,26 @@ _TO_DIGITS = np.array([float(10 ** (3 - e)) for e in _TABLE_DECADES])
 
 @functools.lru_cache(maxsize=None)
 def _decade_texts(exponent: int) -> np.ndarray:
-    """The texts of 1.000 ... 9.999 times 10**exponent, as `_formatted`
-    writes them (ASCII bytes), indexed by the four digits less 1000."""
-    numbers = np.arange(1000, 10000, dtype=float) / float(10 ** (3 - exponent))  # correctly rounded
-    return np.array(_formatted(numbers).encode("ascii").split(b","))
+    """The texts of 1.000 ... 9.999 times 10**exponent as `_formatted`
+    writes them (ASCII bytes), indexed by the four digits less 1000: the
+    digits with the point placed, the zeros after it dropped, and below
+    1e-3 the exponent, written from integers (cheaper than %g)."""
+    digits = np.arange(1000, 10000)
+    if exponent in (-3, -2, -1, 3):  # 0.001234, 0.01234, 0.1234; 1234
+        form = ("0." + "0" * (-1 - exponent) if exponent < 0 else "") + "%d"
+        numbers = digits.tolist()
+    else:  # 1.234e-5, 1.234, 12.34, 123.4: whole part and fraction
+        places = 3 - exponent if exponent >= 0 else 3
+        form = "%d.%0" + str(places) + "d"
+        numbers = np.stack(np.divmod(digits, 10 ** places), axis=1).ravel().tolist()
+    text = (",".join([form] * len(digits)) % tuple(numbers)) + ","
+    if exponent != 3:
+        for _ in range(3):  # at most three zeros end the digits
+            text = text.replace("0,", ",")
+        text = text.replace(".,", ",")
+    if exponent < -3:
+        text = text.replace(",", f"e{exponent},")
+    return np.array(text[:-1].encode("ascii").split(b","))
 
 
 def _formatted(values: np.ndarray) -> str:
