@@ -8,7 +8,6 @@ as JSON allows, so a 3-channel spectrum of 2049 lines stays under 64 kB.
 """
 
 import datetime
-import functools
 import json
 import math
 import re
@@ -64,7 +63,7 @@ class Lines:
     def json(self) -> str:
         values = self.values
         # A line's text depends only on its decade and its four digits, so
-        # most lines are looked up in a table per decade instead of being
+        # in a decade with a table its lines are looked up instead of being
         # formatted: the digits are those %g rounds to (the exact binary
         # value, rounded half to even) wherever they are more than 1e-9 of a
         # digit from a tie; the rest (ties, the edges of a decade, zero,
@@ -82,22 +81,33 @@ class Lines:
         where = np.flatnonzero(looked_up)
         decades = decade[where]
         digits = digits[where].astype(np.intp) - 1000
+        others = ~looked_up
         for exponent in np.unique(decades).tolist():
             mine = decades == exponent
-            texts[where[mine]] = _decade_texts(exponent)[digits[mine]]
-        others = ~looked_up
+            table = _TABLES.get(exponent)
+            if table is None:
+                if np.count_nonzero(mine) < _TABLE_WORTH:
+                    others[where[mine]] = True  # too few to be worth a table yet
+                    continue
+                table = _TABLES[exponent] = _decade_texts(exponent)
+            texts[where[mine]] = table[digits[mine]]
+        if others.all():
+            return "[" + _formatted(values) + "]"
         if others.any():
             texts[others] = _formatted(values[others]).encode("ascii").split(b",")
         return "[" + b",".join(texts.tolist()).decode("ascii") + "]"
 
 
-# Decades with a table of texts (at most 9000 x 8 bytes each, made on first
-# use): 1e-9 .. 1e3, where 1000 ... 9999 times the decade's 1e-3 is exact.
+# Decades that may have a table of texts (at most 9000 x 8 bytes each):
+# 1e-9 .. 1e3, where 1000 ... 9999 times the decade's 1e-3 is exact. A table
+# costs about as much to make as formatting 9000 numbers, so it is made once
+# a row holds this many lines of its decade (a large spectrum's noise floor).
 _TABLE_DECADES = range(-9, 4)
 _TO_DIGITS = np.array([float(10 ** (3 - e)) for e in _TABLE_DECADES])
+_TABLE_WORTH = 2000
+_TABLES: Dict[int, np.ndarray] = {}
 
 
-@functools.lru_cache(maxsize=None)
 def _decade_texts(exponent: int) -> np.ndarray:
     """The texts of 1.000 ... 9.999 times 10**exponent as `_formatted`
     writes them (ASCII bytes), indexed by the four digits less 1000: the
