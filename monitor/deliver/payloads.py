@@ -82,11 +82,14 @@ class Lines:
         decades = decade[where]
         digits = digits[where].astype(np.intp) - 1000
         others = ~looked_up
-        for exponent in np.unique(decades).tolist():
+        counts = np.bincount(decades - _TABLE_DECADES[0], minlength=len(_TABLE_DECADES))
+        for exponent, count in zip(_TABLE_DECADES, counts.tolist()):
+            if not count:
+                continue
             mine = decades == exponent
             table = _TABLES.get(exponent)
             if table is None:
-                if np.count_nonzero(mine) < _TABLE_WORTH:
+                if count < _TABLE_WORTH:
                     others[where[mine]] = True  # too few to be worth a table yet
                     continue
                 table = _TABLES[exponent] = _decade_texts(exponent)
