@@ -62,6 +62,8 @@ class Lines:
 
     def json(self) -> str:
         values = self.values
+        if len(values) < _TABLE_WORTH and not _TABLES:
+            return "[" + _formatted(values) + "]"  # a short row, and no table yet: nothing to look up
         # A line's text depends only on its decade and its four digits, so
         # in a decade with a table its lines are looked up instead of being
         # formatted: the digits are those %g rounds to (the exact binary
