@@ -48,12 +48,13 @@ class Ring:
                 row[:keep] = row[self._end - keep : self._end]
             self._end = keep
         kept = self._buf[:, self._end : self._end + n]
-        kept[...] = samples.T
         if scale is not None:
-            # Scaled here, along each channel's row: on the (n, channels)
-            # block a per-channel factor would run an inner loop of length
-            # `channels`, several times slower.
-            kept *= scale
+            # Scaled while copied, in one pass, along each channel's row: on
+            # the (n, channels) block a per-channel factor would run an inner
+            # loop of length `channels`, several times slower.
+            np.multiply(samples.T, scale, out=kept)
+        else:
+            kept[...] = samples.T
         self._end += n
         self.count = min(self.count + n, self.capacity)
 

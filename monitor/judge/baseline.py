@@ -107,14 +107,10 @@ class Baseline:
 
     def limits(self) -> Tuple[Optional[float], Optional[float]]:
         """(warning, alarm) now: absolute ones as given, ratio ones once learned."""
-        band = self.band
-
-        def pick(absolute: Optional[float], ratio: Optional[float]) -> Optional[float]:
-            if ratio is None:
-                return absolute
-            return None if self.value is None else ratio * self.value
-
-        return pick(band.warning, band.warning_ratio), pick(band.alarm, band.alarm_ratio)
+        band, value = self.band, self.value
+        warning = band.warning if band.warning_ratio is None else None if value is None else band.warning_ratio * value
+        alarm = band.alarm if band.alarm_ratio is None else None if value is None else band.alarm_ratio * value
+        return warning, alarm
 
     def update(self, value: float, t: float) -> bool:
         """Feed one band value; True when learning has just finished."""

@@ -53,6 +53,9 @@ BLIND_MIN_S = 5.0
 # that arrival jitter of single frames does not count.
 _RATE_BASELINE_S = 5.0
 NYQUIST_TOP_SHARE = 0.1  # the top 10 % of the band below Nyquist
+# The source counters the window differences (`counters()`; a missing one
+# counts 0), in the order they follow the breaks in a snapshot's values.
+_SOURCE_KEYS = ("corrupt_frames", "mismatched", "nonfinite", "frames")
 
 
 @dataclass
@@ -114,18 +117,27 @@ class Health:
         self._unmeasured = 0  # samples received since the last result
         self._dropped_seen = 0  # the sink's loss total when last seen
         self._lost = 0  # events lost since the queue fault was raised
+        self._delivery_quiet: Optional[Tuple[int, int, int, bool]] = None  # on_delivery's skip
         self._refused = 0.0  # the config check's value, fed on with every block
-        # Counter snapshots over the window, oldest first; the first stands
-        # for "before any sample", so a fresh monitor judges all it has seen.
-        self._snapshots: Deque[Tuple[float, Dict[str, float]]] = collections.deque([(-math.inf, {})])
+        # Totals for what sources do not count themselves: samples, breaks,
+        # and per channel the clipped and the implausible samples.
+        self._samples = 0
+        self._breaks = 0
+        self._clipped = [0] * len(self.channels)
+        self._beyond = [0] * len(self.channels)
+        # Counter snapshots over the window, oldest first: (stream time, the
+        # breaks, the _SOURCE_KEYS, the samples, the clipped and the
+        # implausible per channel). The first stands for "before any
+        # sample", so a fresh monitor judges all it has seen.
+        zeros = (0,) * (2 + len(_SOURCE_KEYS) + 2 * len(self.channels))
+        self._snapshots: Deque[Tuple[float, Tuple[float, ...]]] = collections.deque([(-math.inf, zeros)])
         self._flat_since: List[Optional[float]] = [None] * len(self.channels)
         self._last_row: Optional[List[float]] = None
         self._rate_origin: Optional[Tuple[int, int]] = None  # (timestamp_us, stream sample index)
         self._top_line: Optional[int] = None
-        # Totals for what sources do not count themselves.
-        self._own: Dict[str, int] = {"samples": 0, "breaks": 0}
-        self._own.update({f"clipped{i}": 0 for i in range(len(self.channels))})
-        self._own.update({f"implausible{i}": 0 for i in range(len(self.channels))})
+        # The psd's lines summed for the nyquist share, set with _top_line.
+        self._top_lines: Tuple[slice, slice] = (slice(None), slice(None))
+        self._lower_lines: Tuple[slice, slice] = (slice(None), slice(None))
 
     @staticmethod
     def _update(check: Check, value: Optional[float], t: float, out: List[Change]) -> None:
@@ -160,8 +172,10 @@ class Health:
         self._update(self.config_check, self._refused, t, out)
         self._unmeasured += raw.shape[0]
         self._update(self.blind, self._unmeasured / self.fs, t, out)
-        totals: Dict[str, float] = dict(counters or {})
-        implausible = self._count_block(raw, lost, full_scale, totals)
+        implausible = self._count_block(raw, lost, full_scale)
+        get = counters.get if counters else {}.get
+        totals = (self._breaks, *[get(key, 0) for key in _SOURCE_KEYS], self._samples, *self._clipped,
+                  *self._beyond)
         # A break or an implausible sample is judged at once: the band
         # values of this block's results depend on it.
         self._windowed(t, totals, lost > 0 or implausible, out)
@@ -174,14 +188,19 @@ class Health:
         out: List[Change] = []
         self._unmeasured = 0
         self._update(self.blind, 0.0, t, out)
+        psd = spectrum.psd
         if self._top_line is None:
-            lines = spectrum.psd.shape[1]
+            lines = psd.shape[1]
             # First line of the top 10 % of the band below Nyquist.
             self._top_line = int(np.ceil((1.0 - NYQUIST_TOP_SHARE) * (lines - 1)))
-        # np.add.reduce is what ndarray.sum calls, without its wrapper: every hop.
-        top = np.add.reduce(spectrum.psd[:, self._top_line :], axis=1)
-        total = np.add.reduce(spectrum.psd[:, 1 : self._top_line], axis=1) + top
-        for check, top_i, total_i in zip(self.nyquist, top.tolist(), total.tolist()):
+            self._top_lines = (slice(None), slice(self._top_line, None))
+            self._lower_lines = (slice(None), slice(1, self._top_line))  # above DC
+        # np.add.reduce is what ndarray.sum calls, without its wrapper: every
+        # hop. The few per-channel sums are added as plain floats.
+        top = np.add.reduce(psd[self._top_lines], axis=1).tolist()
+        lower = np.add.reduce(psd[self._lower_lines], axis=1).tolist()
+        for check, top_i, lower_i in zip(self.nyquist, top, lower):
+            total_i = lower_i + top_i
             self._update(check, top_i / total_i if total_i > 0 else None, t, out)
         return out
 
@@ -198,9 +217,12 @@ class Health:
         carries in `value` how many were lost meanwhile, so the count reaches
         consumers with the all-clear."""
         out: List[Change] = []
+        check = self.queue
+        seen = (dropped, queued, held, refused)
+        if seen == self._delivery_quiet and check.rule.index == 0:
+            return out  # as the last call, which changed nothing: nothing can change
         self._lost += dropped - self._dropped_seen
         self._dropped_seen = dropped
-        check = self.queue
         at_risk = refused or held > 0
         if check.rule.level == "normal":
             bad = at_risk or self._lost > 0
@@ -212,6 +234,9 @@ class Health:
             out.append((check, change))
             if not bad:
                 self._lost = 0  # reported with the all-clear; a new count starts
+        # Normal and unchanged: the same values again give the same result
+        # (a loss or a held event raises the fault at once, with no delay).
+        self._delivery_quiet = seen if not change and check.rule.index == 0 else None
         return out
 
     def on_config(self, refused: bool, t: float) -> List[Change]:
@@ -223,32 +248,30 @@ class Health:
 
     # ------------------------------------------------------------ details
 
-    def _count_block(self, raw: np.ndarray, lost: int, full_scale: Optional[float],
-                     totals: Dict[str, float]) -> bool:
+    def _count_block(self, raw: np.ndarray, lost: int, full_scale: Optional[float]) -> bool:
         """Add this block to the running totals; True when it holds an implausible sample."""
-        own = self._own
-        own["samples"] += raw.shape[0]
+        self._samples += raw.shape[0]
         # Every break in the samples, whatever caused it: a sequence jump, a
         # dropped block when the pipeline fell behind, a reconnect.
-        own["breaks"] += 1 if lost > 0 else 0
+        self._breaks += 1 if lost > 0 else 0
         implausible = False
         if raw.size:
             # Cheap tests first: most blocks have no sample near full scale
-            # and none near the implausible bound.
-            top, bottom = raw.max(), raw.min()
+            # and none near the implausible bound. The ufuncs' own reduce,
+            # without the wrapper of ndarray.max and min.
+            top = np.maximum.reduce(raw, axis=None)
+            bottom = np.minimum.reduce(raw, axis=None)
             if full_scale is not None and (top >= full_scale or bottom <= -full_scale):
                 clipped = np.count_nonzero(np.abs(raw) >= full_scale, axis=0)
-                for i, n in enumerate(clipped):
-                    own[f"clipped{i}"] += int(n)
+                self._clipped = [a + b for a, b in zip(self._clipped, clipped.tolist())]
             if top >= self._implausible_low or bottom <= -self._implausible_low:
                 beyond = np.count_nonzero(np.abs(raw) >= self._implausible_raw, axis=0)
-                for i, n in enumerate(beyond):
-                    own[f"implausible{i}"] += int(n)
+                self._beyond = [a + b for a, b in zip(self._beyond, beyond.tolist())]
                 implausible = bool(beyond.any())
-        totals.update(own)
         return implausible
 
-    def _windowed(self, t: float, totals: Dict[str, float], urgent: bool, out: List[Change]) -> None:
+    def _windowed(self, t: float, totals: Tuple[float, ...], urgent: bool, out: List[Change]) -> None:
+        """`totals`: the values of a snapshot now (see _snapshots)."""
         snaps = self._snapshots
         if t - snaps[-1][0] >= _SNAPSHOT_S:
             snaps.append((t, totals))
@@ -256,20 +279,18 @@ class Health:
             return  # judged with the next snapshot, at most _SNAPSHOT_S later
         while len(snaps) > 1 and snaps[1][0] <= t - self.config.window:
             snaps.popleft()
-        _, old = snaps[0]
-
-        def delta(key: str) -> float:
-            return float(totals.get(key, 0) - old.get(key, 0))
-
-        self._update(self.gap, delta("breaks"), t, out)
-        rejected = delta("corrupt_frames") + delta("mismatched") + delta("nonfinite")
-        seen = delta("frames") + rejected
-        self._update(self.corrupt, rejected / seen if seen > 0 else 0.0, t, out)
-        samples = delta("samples")
-        for i, check in enumerate(self.clipping):
-            self._update(check, delta(f"clipped{i}") / samples if samples > 0 else 0.0, t, out)
-        for i, check in enumerate(self.implausible):
-            self._update(check, delta(f"implausible{i}"), t, out)
+        breaks, corrupt, mismatched, nonfinite, frames, samples, *rest = [
+            float(now - then) for now, then in zip(totals, snaps[0][1])]
+        update = self._update
+        update(self.gap, breaks, t, out)
+        rejected = corrupt + mismatched + nonfinite
+        seen = frames + rejected
+        update(self.corrupt, rejected / seen if seen > 0 else 0.0, t, out)
+        channels = len(self.channels)
+        for check, clipped in zip(self.clipping, rest[:channels]):
+            update(check, clipped / samples if samples > 0 else 0.0, t, out)
+        for check, beyond in zip(self.implausible, rest[channels:]):
+            update(check, beyond, t, out)
 
     def _flatline(self, raw: np.ndarray, lost: int, t: float, out: List[Change]) -> None:
         n = raw.shape[0]
@@ -313,8 +334,9 @@ class Health:
         self._update(self.rate, abs(measured / self.fs - 1.0), t, out)
 
     def implausible_channels(self) -> List[int]:
-        """Indices of the channels whose `implausible` check is in fault."""
-        return [i for i, check in enumerate(self.implausible) if check.rule.level == "fault"]
+        """Indices of the channels whose `implausible` check is in fault
+        (its one level above normal): asked at every result."""
+        return [i for i, check in enumerate(self.implausible) if check.rule.index]
 
     def rows(self) -> List[Dict[str, object]]:
         """name, channel, level and value of every check, for `levels`."""

@@ -15,6 +15,7 @@ HEALTH_LEVELS = ("normal", "fault")
 
 # Stream times are sample counts divided by the rate; allow for rounding.
 _EPS = 1e-9
+_NEG_INF = -math.inf
 
 
 class LevelMachine:
@@ -44,7 +45,7 @@ class LevelMachine:
         self.limits: List[Tuple[str, float]] = [(n, float(v)) for n, v in limits if v is not None]
         self._above: List[Optional[float]] = [None] * len(self.limits)
         self._below: List[Optional[float]] = [None] * len(self.limits)
-        self._idle = [None] * len(self.limits)  # timers as they stand with nothing rising
+        self._rising = False  # an "above" timer may be running (False: none is)
         self._floor = min((v for _, v in self.limits), default=math.inf)
         self.index = 0
         if level != "normal":
@@ -64,17 +65,20 @@ class LevelMachine:
 
     def update(self, value: Optional[float], t: float) -> Optional[Tuple[str, str]]:
         """Feed one value at stream time `t`; return (previous, new) on a change."""
-        if value is None or not math.isfinite(value):
-            self._above = [None] * len(self.limits)
-            self._below = [None] * len(self.limits)
-            return None
-        if self.index == 0 and value < self._floor:
+        if self.index == 0 and value is not None and _NEG_INF < value < self._floor:
             # The common case, kept cheap: nothing raised, nothing rising.
             # The "below" timers only matter once a level is raised, and a
             # raise happens with the value above every lower limit's clear point.
-            if self._above != self._idle:
+            if self._rising:
                 self._above = [None] * len(self.limits)
+                self._rising = False
             return None
+        if value is None or not math.isfinite(value):
+            self._above = [None] * len(self.limits)
+            self._below = [None] * len(self.limits)
+            self._rising = False
+            return None
+        self._rising = True
         for i, (_, limit) in enumerate(self.limits):
             if value >= limit:
                 self._above[i] = t if self._above[i] is None else self._above[i]

@@ -122,6 +122,7 @@ class Monitor:
             self.envelope = EnvelopeStage(self.fs, spec.size, spec.window, spec.averages, channels,
                                           cfg.envelope.band_hz)
         self._pending = spec.size  # samples until the next frame
+        self._hop = spec.hop  # a property of the config: read at every frame
 
     def _build_rules(self, previous: Optional[Dict[Tuple[str, Optional[str]], str]]) -> None:
         """Bands, speed, level machines and health checks. `previous` maps
@@ -351,7 +352,7 @@ class Monitor:
             self._samples += take
             self._pending -= take
             if self._pending == 0:
-                self._pending = self.config.spectrum.hop
+                self._pending = self._hop
                 self._frame()
 
     def _frame(self) -> None:

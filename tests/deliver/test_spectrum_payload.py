@@ -99,6 +99,40 @@ def test_lines_are_written_as_pythons_4_significant_digit_rounding():
     assert json.loads(Lines(np.array([np.nan, np.inf, 1.0])).json()) == [None, None, 1.0]
 
 
+def _short(value):
+    """Python's "%.4g" text of `value`, written as short as JSON allows
+    (README, the spectrum message: 1.234e-5, not 1.234e-05; 1.2e-4, not
+    0.00012): the short forms are this project's choice."""
+    text = f"{value:.4g}"
+    sign, body = ("-", text[1:]) if text.startswith("-") else ("", text)
+    if body.startswith("0.000"):
+        digits = body[5:]
+        body = f"{digits[0]}.{digits[1:]}e-4" if len(digits) > 1 else f"{digits}e-4"
+    mantissa, _, exponent = body.partition("e")
+    return sign + mantissa + (f"e{int(exponent)}" if exponent else "")
+
+
+def test_lines_at_rounding_ties_and_decade_edges_are_pythons_rounding():
+    # Reference: Python's own "%.4g" (the exact binary value rounded to 4
+    # digits): every four digits, and at and beside the halfway points of
+    # the fourth digit and the powers of ten, in every decade from 1e-10 to 1e4.
+    every = np.arange(1000.0, 10000.0)
+    some = every[::7]
+    rows = []
+    for exponent in range(-10, 5):
+        unit = 10.0 ** (exponent - 3)
+        ties = (some + 0.5) * unit
+        power = 10.0 ** exponent
+        rows.append(np.concatenate([every * unit, ties, np.nextafter(ties, 0.0), np.nextafter(ties, 1.0),
+                                    [power, np.nextafter(power, 0.0), np.nextafter(power, 1.0),
+                                     9.9995 * power, 9.9994 * power, 9.9996 * power]]))
+    row = np.concatenate(rows)
+    row = np.concatenate([row, -row[::25], [0.0, -0.0, 1e300, 5e-324, np.nan, np.inf, -np.inf]])
+    text = Lines(row).json()
+    assert text == "[" + ",".join("null" if not np.isfinite(v) else _short(v) for v in row.tolist()) + "]"
+    assert json.loads(text) == [float(f"{v:.4g}") if np.isfinite(v) else None for v in row.tolist()]
+
+
 def test_a_3_channel_4096_point_spectrum_stays_under_64_kB():
     # An invented 3-axis sensor in g: tones and broadband noise at levels an
     # industrial accelerometer sees (1e-4 to 1e-1 g per line), all 2049 lines.
