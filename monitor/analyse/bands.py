@@ -146,10 +146,6 @@ class BandBank:
         whole = np.clip(((k + 0.5) * bin_hz - (k - 0.5) * bin_hz) / bin_hz, 0.0, 1.0)
         self._inner = {q: whole * f for q, f in self._factors.items()}
         self._units = [quantity_unit(band.quantity, unit) for band, _ in self.pairs]
-        # Both again as plain floats: an order band's few lines are put
-        # together in a list, cheaper than numpy's calls on a dozen numbers.
-        self._factor_lists = {q: f.tolist() for q, f in self._factors.items()}
-        self._inner_lists = {q: w.tolist() for q, w in self._inner.items()}
         # One group per band, with all that does not change between hops: the
         # spectrum it reads, its channels' rows (a slice where they run in
         # order), the labels of its values, and for a band with fixed edges
@@ -185,23 +181,27 @@ class BandBank:
         last = min(self.lines - 1, math.ceil(hi / df + 0.5))
         if last < first:
             return first, np.zeros(0)
-        weights = self._inner_lists[band.quantity][first : last + 1]
-        factors = self._factor_lists[band.quantity]
-        # Lines wholly inside the edges form one run, whose values the copied
-        # slice holds; the lines an edge cuts are at its ends: walk in from both.
+        # As plain floats: an order band's few lines are put together in a
+        # list, cheaper than numpy's calls on a dozen numbers. Only the band's
+        # own lines are turned into floats (whole spectra as lists would take
+        # 32 bytes a line, resident all the time).
+        weights = self._inner[band.quantity][first : last + 1].tolist()
+        factors = self._factors[band.quantity][first : last + 1].tolist()
+        # Lines wholly inside the edges form one run, whose values the list
+        # holds; the lines an edge cuts are at its ends: walk in from both.
         k = first
         while k <= last:
             left, right = (k - 0.5) * df, (k + 0.5) * df
             if lo <= left and right <= hi:
                 break
-            weights[k - first] = _cut(left, right, lo, hi, df) * factors[k]
+            weights[k - first] = _cut(left, right, lo, hi, df) * factors[k - first]
             k += 1
         j = last
         while j > k:
             left, right = (j - 0.5) * df, (j + 0.5) * df
             if lo <= left and right <= hi:
                 break
-            weights[j - first] = _cut(left, right, lo, hi, df) * factors[j]
+            weights[j - first] = _cut(left, right, lo, hi, df) * factors[j - first]
             j -= 1
         return first, np.array(weights)
 
