@@ -234,9 +234,9 @@ class Health:
             out.append((check, change))
             if not bad:
                 self._lost = 0  # reported with the all-clear; a new count starts
-        # Normal and unchanged: the same values again give the same result
-        # (a loss or a held event raises the fault at once, with no delay).
-        self._delivery_quiet = seen if not change and check.rule.index == 0 else None
+        # Normal with nothing wrong: the same values again find nothing wrong
+        # and leave the level machine as it is (no timer runs below its limit).
+        self._delivery_quiet = seen if not bad and check.rule.index == 0 else None
         return out
 
     def on_config(self, refused: bool, t: float) -> List[Change]:
